@@ -1,0 +1,73 @@
+"""From input paths to validated, repaired observations: find files, read each, prepare the rows."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pandas as pd
+
+from audit.config import AuditConfig
+from audit.ingest import FileProblem, FileRead, InputError, find_input_files, read_input_file
+from audit.validation import PreparedInput, prepare_rows
+
+
+@dataclass
+class ReviewInput:
+    """Everything intake produced: the prepared tables plus what each file gave."""
+
+    prepared: PreparedInput
+    files: list[FileRead] = field(default_factory=list)
+    path_problems: list[FileProblem] = field(default_factory=list)
+
+    def per_file(self) -> pd.DataFrame:
+        """One row per input file: rows read, accepted, quarantined, problems and what was detected."""
+        q = self.prepared.quarantine
+        obs = self.prepared.observations
+        adj = self.prepared.adjustments
+        records = []
+        for f in self.files:
+            name = str(f.path)
+            qf = q[q["source_file"] == name]
+            records.append({
+                "file": name,
+                "rows_read": f.rows_read,
+                "rows_accepted": int(obs.loc[obs["source_file"] == name, "n_source_rows"].sum()),
+                "rows_quarantined": int(qf["n_rows"].sum()),
+                "problems": len(qf),
+                "adjustments": int((adj["source_file"] == name).sum()),
+                "detected": ", ".join(f"{k}={_show(v)}" for k, v in f.details.items() if v),
+            })
+        return pd.DataFrame(records, columns=["file", "rows_read", "rows_accepted", "rows_quarantined",
+                                              "problems", "adjustments", "detected"])
+
+
+def _show(value: str) -> str:
+    return {"\t": "tab", ",": "comma", ";": "semicolon", "|": "pipe", ".": "point"}.get(value, value)
+
+
+def read_files(paths: list[str | Path]) -> tuple[list[Path], list[FileProblem]]:
+    """Find input files; raise InputError when there is nothing to read at all."""
+    files, problems = find_input_files(list(paths))
+    if not files:
+        reasons = "; ".join(p.message for p in problems) or "no input paths given"
+        raise InputError(f"nothing to read: {reasons}")
+    return files, problems
+
+
+def combine(reads: list[FileRead], path_problems: list[FileProblem], config: AuditConfig) -> ReviewInput:
+    """Prepare the rows of all files together (a case may span files)."""
+    frames = [r.rows for r in reads if len(r.rows)]
+    raw = pd.concat(frames, ignore_index=True) if frames else reads[0].rows.iloc[0:0] if reads else pd.DataFrame()
+    problems = [p for r in reads for p in r.problems]
+    if raw.empty and not reads:
+        raise InputError("nothing to read")
+    prepared = prepare_rows(raw, problems, config)
+    return ReviewInput(prepared=prepared, files=reads, path_problems=path_problems)
+
+
+def load_review(paths: list[str | Path], config: AuditConfig) -> ReviewInput:
+    """Find, read and prepare every input file (the sequential path; flows run files as tasks)."""
+    files, path_problems = read_files(paths)
+    reads = [read_input_file(f, config) for f in files]
+    return combine(reads, path_problems, config)
