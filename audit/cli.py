@@ -64,8 +64,9 @@ def _records(df: pd.DataFrame) -> list[dict]:
     return json.loads(df.to_json(orient="records"))
 
 
-def print_validation(review, out=sys.stdout, limit: int = 30) -> None:
+def print_validation(review, out=None, limit: int = 30) -> None:
     """Human-readable validation report: per-file counts, problems, repairs."""
+    out = out or sys.stdout
     prep = review.prepared
     per_file = review.per_file()
     print("Input files", file=out)

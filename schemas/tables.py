@@ -54,6 +54,7 @@ class Observations(pa.DataFrameModel):
 
     class Config:
         strict = False
+        coerce = True
 
 
 class AcceptedCases(pa.DataFrameModel):
@@ -75,6 +76,7 @@ class AcceptedCases(pa.DataFrameModel):
 
     class Config:
         strict = False
+        coerce = True
 
 
 class Adjustments(pa.DataFrameModel):
@@ -93,6 +95,7 @@ class Adjustments(pa.DataFrameModel):
 
     class Config:
         strict = False
+        coerce = True
 
 
 class Quarantine(pa.DataFrameModel):
@@ -117,3 +120,4 @@ class Quarantine(pa.DataFrameModel):
 
     class Config:
         strict = False
+        coerce = True
