@@ -128,9 +128,9 @@ def cmd_demo(args) -> int:
     from audit.intake import load_review
 
     folder = Path(args.dir)
-    demo = write_demo_review(folder / "input")
-    print(f"Wrote an invented demo review to {folder / 'input'} ({len(demo.files)} files). All studies are fictional.")
-    review = load_review([folder / "input"], AuditConfig())
+    demo = write_demo_review(folder)
+    print(f"Wrote an invented demo review to {demo.data_folder} ({len(demo.files)} files). All studies are fictional.")
+    review = load_review([demo.data_folder], AuditConfig())
     print_validation(review, limit=10)
     print(f"\n{CAUTION}")
     return EXIT_OK
