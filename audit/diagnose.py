@@ -1,0 +1,285 @@
+"""Per-case serial-dependence diagnostics for a whole review, batched by design signature.
+
+Cases whose design matrix and effect contrast are equal (same session pattern, phase lengths
+and model) are stacked into one matrix Y (cases x sessions) and every diagnostic that depends
+only on the design (DW null distribution, bounds, power, null moments of r1) is computed once
+for the group. ``diagnose_case`` is the straightforward per-case reference path used in tests.
+
+Output tables (columns documented in README and schemas/results.py):
+  cases   one row per case: model, effect under OLS / GLS-AR(1) REML / GLS at a supplied rho /
+          HAC, flips against OLS, exact DW, residual lag-1 autocorrelation, REML and ML AR(1),
+          Breusch-Godfrey and Ljung-Box, DW for the session-only regression, baseline trend
+          and effect sizes.
+  phases  one row per case and phase: n, mean, raw r1 and Huitema-McKean r1+ with its test.
+  contrasts one row per baseline->treatment contrast: effect sizes (see audit.effect_sizes).
+"""
+
+from __future__ import annotations
+
+from collections import defaultdict
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from audit import reasons as R
+from audit.ar1 import ar1_batch
+from audit.asymptotic_tests import breusch_godfrey_batch, ljung_box_batch
+from audit.autocorrelation import phase_lag1_batch, residual_lag1_batch
+from audit.design import CaseDesign, case_design
+from audit.durbin_watson import critical_bounds, dw_power, dw_pvalues_batch, dw_statistic
+from audit.regression import gls_contrast_batch, hac_contrast_batch, ols_contrast_batch
+
+DEFAULT_POWER_RHO = 0.3
+CASE_ID_COLUMNS = ["case_key", "study", "case", "series", "design", "outcome_scale", "desired_direction"]
+
+ProgressFn = Callable[[int, int], None]
+
+
+def _zone(d: np.ndarray, d_lower: float, d_upper: float) -> np.ndarray:
+    """DW zone from the bounds: positive / inconclusive_positive / none / inconclusive_negative / negative."""
+    out = np.full(d.shape, "none", dtype=object)
+    if not (np.isfinite(d_lower) and np.isfinite(d_upper)):
+        out[:] = "unknown"
+        return out
+    dn = 4.0 - d
+    out[(d >= d_lower) & (d <= d_upper)] = "inconclusive_positive"
+    out[d < d_lower] = "positive"
+    out[(dn >= d_lower) & (dn <= d_upper)] = "inconclusive_negative"
+    out[dn < d_lower] = "negative"
+    out[~np.isfinite(d)] = "unknown"
+    return out
+
+
+def _split_cases(obs: pd.DataFrame):
+    """Yield (case_key, row slice) of observations sorted by case_key then session."""
+    keys = obs["case_key"].to_numpy()
+    if len(keys) == 0:
+        return []
+    bounds = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1], True])
+    return [(keys[b], slice(b, e)) for b, e in zip(bounds[:-1], bounds[1:])]
+
+
+def diagnose_group(Y: np.ndarray, design: CaseDesign, alpha: float, supplied_rho: np.ndarray | float | None,
+                   power_rho: float = DEFAULT_POWER_RHO) -> pd.DataFrame:
+    """All regression-based diagnostics for cases that share one design (rows of Y)."""
+    X, c = design.X, design.contrast
+    m, n = Y.shape
+    k = X.shape[1]
+    out: dict[str, np.ndarray] = {}
+    out["model"] = np.full(m, design.model, dtype=object)
+    out["n_obs"] = np.full(m, n)
+    out["n_params"] = np.full(m, k)
+    out["df_resid"] = np.full(m, n - k)
+    out["n_transitions"] = np.full(m, design.n_transitions)
+
+    # OLS fit and residuals (shared projection)
+    pinv = np.linalg.pinv(X)
+    E = Y - (Y @ pinv.T) @ X.T
+    no_effect = design.n_transitions == 0
+
+    ols = ols_contrast_batch(Y, X, c, alpha)
+    _put(out, "effect_ols", ols, ["estimate", "std_error", "p_value", "significant", "reason"])
+
+    # AR(1): REML (primary) and ML (cross-check)
+    reml = ar1_batch(Y, X, "REML")
+    ml = ar1_batch(Y, X, "ML")
+    out["ar1_reml_rho"] = reml["rho"].to_numpy()
+    out["ar1_reml_at_bound"] = reml["at_bound"].to_numpy()
+    out["ar1_reml_reason"] = reml["reason"].to_numpy()
+    out["ar1_ml_rho"] = ml["rho"].to_numpy()
+
+    rho_reml = np.nan_to_num(reml["rho"].to_numpy(), nan=0.0)
+    gls = gls_contrast_batch(Y, X, c, rho_reml, alpha)
+    gls_reason = np.where(reml["reason"].to_numpy() != R.OK, reml["reason"].to_numpy(), gls["reason"].to_numpy())
+    gls.loc[gls_reason != R.OK, ["estimate", "std_error", "p_value"]] = np.nan
+    gls["reason"] = gls_reason
+    _put(out, "effect_gls_reml", gls, ["estimate", "std_error", "p_value", "significant", "reason"])
+
+    if supplied_rho is not None:
+        rho_s = np.broadcast_to(np.asarray(supplied_rho, dtype=float), (m,)).copy()
+        gls_s = gls_contrast_batch(Y, X, c, np.nan_to_num(rho_s), alpha)
+        gls_s.loc[~np.isfinite(rho_s), ["estimate", "std_error", "p_value"]] = np.nan
+        out["effect_gls_supplied_rho"] = rho_s
+        _put(out, "effect_gls_supplied", gls_s, ["estimate", "std_error", "p_value", "significant"])
+
+    hac = hac_contrast_batch(Y, X, c, alpha)
+    _put(out, "effect_hac", hac, ["std_error", "p_value", "significant"])
+    out["effect_hac_lags"] = hac["lags"].to_numpy()
+
+    if no_effect:
+        for col in [k_ for k_ in out if k_.startswith("effect_")]:
+            if out[col].dtype.kind == "f":
+                out[col] = np.full(m, np.nan)
+        out["effect_ols_reason"] = np.full(m, R.NO_CONTRAST, dtype=object)
+
+    # flips against the OLS decision
+    base = _decision(out["effect_ols_p_value"], alpha)
+    for alt in ("gls_reml", "hac") + (("gls_supplied",) if supplied_rho is not None else ()):
+        out[f"flip_{alt}"] = _flip(base, _decision(out[f"effect_{alt}_p_value"], alpha))
+    flips = [out[f"flip_{a}"] for a in ("gls_reml", "hac")]
+    out["flip_any"] = np.logical_or.reduce([f.fillna(False).to_numpy(dtype=bool) for f in flips])
+
+    # Durbin-Watson, exact, on the model residuals
+    d = _dw_rows(E)
+    p_pos, p_neg = dw_pvalues_batch(d, X)
+    d_lower, d_upper = critical_bounds(n, k - 1, alpha)
+    out["dw_statistic"] = d
+    out["dw_p_positive"] = np.asarray(p_pos, dtype=float)
+    out["dw_p_negative"] = np.asarray(p_neg, dtype=float)
+    out["dw_d_lower"] = np.full(m, d_lower)
+    out["dw_d_upper"] = np.full(m, d_upper)
+    out["dw_zone"] = _zone(d, d_lower, d_upper)
+    out["dw_significant_positive"] = out["dw_p_positive"] < alpha
+    out["dw_significant_negative"] = out["dw_p_negative"] < alpha
+    out["dw_power_rho"] = np.full(m, power_rho)
+    out["dw_power"] = np.full(m, _safe_power(X, power_rho, alpha))
+
+    # DW for the outcome on session alone (what published studies usually report)
+    X0 = X[:, :2]  # intercept and session: the first two columns of every case model
+    E0 = Y - (Y @ np.linalg.pinv(X0).T) @ X0.T
+    d0 = _dw_rows(E0)
+    p0_pos, _ = dw_pvalues_batch(d0, X0)
+    out["dw_session_only_statistic"] = d0
+    out["dw_session_only_p_positive"] = np.asarray(p0_pos, dtype=float)
+
+    # residual lag-1 autocorrelation with its exact null moments
+    r1 = residual_lag1_batch(E, X, Y)
+    out["r1_residual"] = r1["r1"].to_numpy()
+    out["r1_null_mean"] = r1["null_mean"].to_numpy()
+    out["r1_null_variance"] = r1["null_variance"].to_numpy()
+    out["r1_corrected"] = r1["r1_corrected"].to_numpy()
+    out["r1_z"] = r1["z"].to_numpy()
+    out["r1_p_value"] = r1["p_value"].to_numpy()
+
+    # asymptotic tests
+    bg = breusch_godfrey_batch(E, X, Y)
+    out["bg_statistic"] = bg["statistic"].to_numpy()
+    out["bg_p_value"] = bg["p_value"].to_numpy()
+    lb = ljung_box_batch(E, None, Y)
+    out["lb_statistic"] = lb["statistic"].to_numpy()
+    out["lb_lags"] = lb["lags"].to_numpy()
+    out["lb_p_value"] = lb["p_value"].to_numpy()
+
+    # degenerate series: statistics that need residual variance become NaN with a reason
+    dead = ~(np.isfinite(d))
+    if dead.any():
+        for col in ("dw_p_positive", "dw_p_negative"):
+            out[col] = np.where(dead, np.nan, out[col])
+        out["dw_zone"] = np.where(dead, "unknown", out["dw_zone"])
+    out["reason"] = np.array([R.join(a, b, c_) for a, b, c_ in zip(
+        out["effect_ols_reason"], out["ar1_reml_reason"], r1["reason"].to_numpy())], dtype=object)
+    return pd.DataFrame(out)
+
+
+def _dw_rows(E: np.ndarray) -> np.ndarray:
+    num = np.sum(np.diff(E, axis=1) ** 2, axis=1)
+    den = np.sum(E**2, axis=1)
+    scale = np.maximum(np.max(np.abs(E), axis=1), 1e-300) ** 2 * E.shape[1]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        d = num / den
+    d[~(den > 1e-24 * scale)] = np.nan
+    return d
+
+
+def _safe_power(X: np.ndarray, rho: float, alpha: float) -> float:
+    try:
+        return float(dw_power(X, rho, alpha))
+    except (ValueError, np.linalg.LinAlgError):
+        return float("nan")
+
+
+def _put(out: dict, prefix: str, frame: pd.DataFrame, cols: list[str]) -> None:
+    for col in cols:
+        out[f"{prefix}_{col}"] = frame[col].to_numpy()
+
+
+def _decision(p: np.ndarray, alpha: float) -> pd.Series:
+    p = np.asarray(p, dtype=float)
+    return pd.Series(pd.array(np.where(np.isfinite(p), p < alpha, False), dtype="boolean")).where(np.isfinite(p), pd.NA)
+
+
+def _flip(a: pd.Series, b: pd.Series) -> pd.Series:
+    return (a != b).astype("boolean")
+
+
+def diagnose_cases(observations: pd.DataFrame, alpha: float = 0.05, supplied_rho: float | pd.Series | None = None,
+                   power_rho: float = DEFAULT_POWER_RHO, progress: ProgressFn | None = None) -> dict[str, pd.DataFrame]:
+    """Diagnose every case of clean observations; returns {"cases", "phases"} tables.
+
+    ``supplied_rho``: one AR(1) coefficient for all cases, or a Series indexed by case_key
+    (the review-wide shrunken value, a sensitivity grid point), for the extra GLS test.
+    """
+    obs = observations.sort_values(["case_key", "session"], kind="stable").reset_index(drop=True)
+    pieces = _split_cases(obs)
+    groups: dict[bytes, list[int]] = defaultdict(list)
+    designs: dict[bytes, CaseDesign] = {}
+    case_rows = []
+    sess = obs["session"].to_numpy(dtype=float)
+    yv = obs["outcome"].to_numpy(dtype=float)
+    ph = obs["phase_index"].to_numpy()
+    cond = obs["condition"].to_numpy().astype(str)
+    label = obs["phase"].to_numpy().astype(str)
+    design_col = obs["design"].to_numpy().astype(str)
+    for i, (key, sl) in enumerate(pieces):
+        des = case_design(sess[sl], ph[sl], cond[sl], design_col[sl.start], label[sl])
+        groups[des.signature].append(i)
+        designs[des.signature] = des
+        case_rows.append(sl.start)
+    ident = obs.iloc[case_rows][CASE_ID_COLUMNS].reset_index(drop=True)
+    if isinstance(supplied_rho, pd.Series):
+        rho_per_case = ident["case_key"].map(supplied_rho).to_numpy(dtype=float)
+    elif supplied_rho is not None:
+        rho_per_case = np.full(len(pieces), float(supplied_rho))
+    else:
+        rho_per_case = None
+
+    parts = []
+    done = 0
+    for sig, idx in groups.items():
+        des = designs[sig]
+        Y = np.vstack([yv[pieces[i][1]] for i in idx])
+        frame = diagnose_group(Y, des, alpha, None if rho_per_case is None else rho_per_case[idx], power_rho)
+        frame.index = idx
+        parts.append(frame)
+        done += len(idx)
+        if progress:
+            progress(done, len(pieces))
+    stats_frame = pd.concat(parts).sort_index() if parts else pd.DataFrame()
+    cases = pd.concat([ident, stats_frame.reset_index(drop=True)], axis=1)
+    phases = phase_table(obs)
+    return {"cases": cases, "phases": phases}
+
+
+def phase_table(obs: pd.DataFrame) -> pd.DataFrame:
+    """One row per case and phase: size, mean, sd, raw r1 and Huitema-McKean r1+ (batched by phase length)."""
+    g = obs.groupby(["case_key", "phase_index"], sort=True)
+    table = g.agg(phase=("phase", "first"), condition=("condition", "first"), n=("outcome", "size"),
+                  first_session=("session", "min"), last_session=("session", "max"),
+                  mean=("outcome", "mean"), sd=("outcome", "std")).reset_index()
+    y = obs.sort_values(["case_key", "phase_index", "session"], kind="stable")["outcome"].to_numpy(dtype=float)
+    starts = np.r_[0, np.cumsum(table["n"].to_numpy())[:-1]]
+    cols = {name: np.full(len(table), np.nan) for name in ("r1", "r1_plus", "r1_plus_z", "r1_plus_p_value")}
+    reason = np.full(len(table), R.OK, dtype=object)
+    for n_len, rows in table.groupby("n").groups.items():
+        rows = np.asarray(rows)
+        Y = np.vstack([y[starts[r]:starts[r] + n_len] for r in rows])
+        res = phase_lag1_batch(Y)
+        cols["r1"][rows] = res["r1"].to_numpy()
+        cols["r1_plus"][rows] = res["r1_plus"].to_numpy()
+        cols["r1_plus_z"][rows] = res["z"].to_numpy()
+        cols["r1_plus_p_value"][rows] = res["p_value_two_sided"].to_numpy()
+        reason[rows] = res["reason"].to_numpy()
+    for name, values in cols.items():
+        table[name] = values
+    table["r1_reason"] = reason
+    return table
+
+
+def diagnose_case(session, outcome, phase_index, condition, design: str, phase_label=None, alpha: float = 0.05,
+                  supplied_rho: float | None = None, power_rho: float = DEFAULT_POWER_RHO) -> dict:
+    """Per-case reference path: the same diagnostics for one case, as a dict."""
+    des = case_design(np.asarray(session, float), np.asarray(phase_index), np.asarray(condition).astype(str), design,
+                      None if phase_label is None else np.asarray(phase_label).astype(str))
+    frame = diagnose_group(np.asarray(outcome, float)[None, :], des, alpha, supplied_rho, power_rho)
+    return frame.iloc[0].to_dict()

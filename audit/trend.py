@@ -1,0 +1,493 @@
+"""Baseline trend diagnostics: OLS slope, Theil-Sen slope, Mann-Kendall test (with a lag-1
+Hamed-Rao variance correction) and a flag for baselines already moving in the therapeutic direction.
+
+All functions take plain arrays and return frozen dataclasses; degenerate input gives NaN plus a
+reason code from :mod:`audit.reasons`, never an exception.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from audit import reasons as R
+
+__all__ = [
+    "OLSSlope",
+    "TheilSenSlope",
+    "MannKendall",
+    "MannKendallHamedRaoLag1",
+    "BaselineTrend",
+    "ols_slope",
+    "theil_sen_slope",
+    "mann_kendall",
+    "mann_kendall_exact_sf",
+    "mann_kendall_hamed_rao_lag1",
+    "baseline_trend",
+    "baseline_trends",
+    "normalize_direction",
+]
+
+_NAN = float("nan")
+MANN_KENDALL_EXACT_MAX_N = 50
+
+
+def normalize_direction(desired_direction: object) -> str | None:
+    """Return 'increase', 'decrease' or None (anything else, including NaN, counts as None)."""
+    if desired_direction is None:
+        return None
+    if isinstance(desired_direction, str):
+        d = desired_direction.strip().lower()
+        if d in ("increase", "decrease"):
+            return d
+    return None
+
+
+def _as_float(a) -> np.ndarray:
+    return np.asarray(a, dtype=float).ravel()
+
+
+def _finite_pair(x, y) -> tuple[np.ndarray, np.ndarray, str]:
+    x, y = _as_float(x), _as_float(y)
+    if x.shape != y.shape:
+        return x, y, R.SINGULAR_DESIGN
+    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+        return x, y, R.NON_FINITE_INPUT
+    return x, y, R.OK
+
+
+def _tie_groups(values: np.ndarray) -> np.ndarray:
+    """Sizes (>1) of groups of exactly equal values."""
+    if values.size == 0:
+        return np.zeros(0, dtype=float)
+    _, counts = np.unique(values, return_counts=True)
+    return counts[counts > 1].astype(float)
+
+
+# ----------------------------------------------------------------------------------------------
+# OLS slope
+# ----------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class OLSSlope:
+    """Ordinary least squares line y = intercept + slope * x with the slope's t-test."""
+
+    n: int
+    ols_slope: float
+    ols_intercept: float
+    ols_slope_se: float
+    ols_slope_t: float
+    ols_df: float
+    ols_slope_p_value: float  # two-sided, Student t with n - 2 df
+    reason: str
+
+
+def ols_slope(x, y) -> OLSSlope:
+    """OLS slope of y on x, its standard error and two-sided t-test p-value (n - 2 df)."""
+    x, y, reason = _finite_pair(x, y)
+    n = int(x.size)
+    if reason:
+        return OLSSlope(n, _NAN, _NAN, _NAN, _NAN, _NAN, _NAN, reason)
+    if n < 2:
+        return OLSSlope(n, _NAN, _NAN, _NAN, _NAN, _NAN, _NAN, R.TOO_FEW_POINTS)
+    xc = x - x.mean()
+    sxx = float(xc @ xc)
+    if not sxx > 0:
+        return OLSSlope(n, _NAN, _NAN, _NAN, _NAN, _NAN, _NAN, R.SINGULAR_DESIGN)
+    yc = y - y.mean()
+    slope = float(xc @ yc) / sxx
+    intercept = float(y.mean() - slope * x.mean())
+    df = n - 2
+    if df < 1:
+        return OLSSlope(n, slope, intercept, _NAN, _NAN, float(df), _NAN, R.NO_RESIDUAL_DF)
+    resid = yc - slope * xc
+    ssr = float(resid @ resid)
+    sst = float(yc @ yc)
+    if ssr <= 1e-20 * sst or sst == 0.0:
+        code = R.join(R.ZERO_RESIDUAL_VARIANCE, R.CONSTANT_SERIES if sst == 0.0 else "")
+        return OLSSlope(n, slope, intercept, 0.0, _NAN, float(df), _NAN, code)
+    se = float(np.sqrt(ssr / df / sxx))
+    t = slope / se
+    p = float(2.0 * stats.t.sf(abs(t), df))
+    return OLSSlope(n, slope, intercept, se, t, float(df), p, R.OK)
+
+
+# ----------------------------------------------------------------------------------------------
+# Theil-Sen
+# ----------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class TheilSenSlope:
+    """Theil-Sen slope (median of pairwise slopes) with Sen's (1968) distribution-free interval."""
+
+    n: int
+    theil_sen_slope: float
+    theil_sen_intercept: float  # median(y) - slope * median(x)
+    theil_sen_slope_low: float
+    theil_sen_slope_high: float
+    theil_sen_confidence: float
+    reason: str
+
+
+def theil_sen_slope(x, y, confidence: float = 0.95) -> TheilSenSlope:
+    """Theil-Sen slope and Sen (1968, eq. 2.6) interval, computed as scipy.stats.theilslopes does.
+
+    The interval takes the order statistics of the N pairwise slopes at ranks
+    round((N -/+ z * sigma) / 2), sigma^2 = [n(n-1)(2n+5) - sum_x t(t-1)(2t+5)
+    - sum_y t(t-1)(2t+5)] / 18 (ties in x and in y), z the normal quantile.
+    """
+    x, y, reason = _finite_pair(x, y)
+    n = int(x.size)
+    if reason:
+        return TheilSenSlope(n, _NAN, _NAN, _NAN, _NAN, confidence, reason)
+    if n < 2:
+        return TheilSenSlope(n, _NAN, _NAN, _NAN, _NAN, confidence, R.TOO_FEW_POINTS)
+    dx = x[:, None] - x[None, :]
+    dy = y[:, None] - y[None, :]
+    keep = dx > 0
+    slopes = np.sort(dy[keep] / dx[keep])
+    if slopes.size == 0:
+        return TheilSenSlope(n, _NAN, _NAN, _NAN, _NAN, confidence, R.SINGULAR_DESIGN)
+    slope = float(np.median(slopes))
+    intercept = float(np.median(y) - slope * np.median(x))
+    a = 1.0 - confidence if confidence > 0.5 else confidence
+    z = stats.norm.ppf(a / 2.0)
+    ties = float(sum(t * (t - 1) * (2 * t + 5) for t in _tie_groups(x)))
+    ties += float(sum(t * (t - 1) * (2 * t + 5) for t in _tie_groups(y)))
+    sigsq = (n * (n - 1) * (2 * n + 5) - ties) / 18.0
+    nt = slopes.size
+    if not sigsq >= 0:
+        return TheilSenSlope(n, slope, intercept, _NAN, _NAN, confidence, R.NUMERICAL_FAILURE)
+    sigma = np.sqrt(sigsq)
+    upper = min(int(np.round((nt - z * sigma) / 2.0)), nt - 1)
+    lower = max(int(np.round((nt + z * sigma) / 2.0)) - 1, 0)
+    return TheilSenSlope(
+        n, slope, intercept, float(slopes[lower]), float(slopes[upper]), confidence, R.OK
+    )
+
+
+# ----------------------------------------------------------------------------------------------
+# Mann-Kendall
+# ----------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class MannKendall:
+    """Mann-Kendall trend test of y against x (time)."""
+
+    n: int
+    mann_kendall_s: float  # sum_{i<j} sign(x_j - x_i) sign(y_j - y_i)
+    mann_kendall_var_s: float  # [n(n-1)(2n+5) - sum_ties t(t-1)(2t+5)] / 18 (ties in y)
+    mann_kendall_tau_a: float  # S / (n(n-1)/2)
+    mann_kendall_tau_b: float  # S / sqrt((n0 - n1)(n0 - n2)), = scipy.stats.kendalltau
+    mann_kendall_z: float  # normal approximation, continuity-corrected unless continuity=False
+    mann_kendall_p_value: float  # two-sided, 2 * (1 - Phi(|Z|))
+    mann_kendall_p_value_exact: float  # two-sided exact permutation p; NaN with ties or n > 50
+    continuity_correction: bool
+    reason: str
+
+
+def mann_kendall_exact_sf(s: float, n: int) -> float:
+    """P(S >= s) for Kendall's S under H0 with n untied values (Mahonian inversion distribution)."""
+    if n < 1:
+        return _NAN
+    # distribution of the number of inversions I (S = n(n-1)/2 - 2I), built by convolution
+    probs = np.array([1.0])
+    for k in range(2, n + 1):
+        new = np.zeros(probs.size + k - 1)
+        for j in range(k):
+            new[j : j + probs.size] += probs
+        probs = new / k
+    n0 = n * (n - 1) // 2
+    s_values = n0 - 2 * np.arange(probs.size)
+    return float(min(1.0, probs[s_values >= s - 1e-9].sum()))
+
+
+def _kendall_s(x: np.ndarray, y: np.ndarray) -> float:
+    sx = np.sign(x[None, :] - x[:, None])
+    sy = np.sign(y[None, :] - y[:, None])
+    return float(np.triu(sx * sy, 1).sum())
+
+
+def _mk_z(s: float, var_s: float, continuity: bool) -> float:
+    if not var_s > 0:
+        return _NAN
+    if continuity:
+        if s > 0:
+            return (s - 1.0) / np.sqrt(var_s)
+        if s < 0:
+            return (s + 1.0) / np.sqrt(var_s)
+        return 0.0
+    return s / np.sqrt(var_s)
+
+
+def mann_kendall(x, y, continuity: bool = True) -> MannKendall:
+    """Mann-Kendall test (Mann 1945; Kendall 1975; procedure as in Gilbert 1987, ch. 16).
+
+    S = sum_{i<j} sign(y_j - y_i) (times sign(x_j - x_i), which is 1 for sorted distinct
+    sessions); Var(S) with the tie correction for tied y values; Z = (S - 1)/sqrt(Var) for S > 0,
+    (S + 1)/sqrt(Var) for S < 0, 0 for S = 0 (continuity correction); p two-sided normal.
+    The exact p-value uses the permutation distribution of S, only without ties and for n <= 50.
+    """
+    x, y, reason = _finite_pair(x, y)
+    n = int(x.size)
+    nan_result = lambda code: MannKendall(  # noqa: E731
+        n, _NAN, _NAN, _NAN, _NAN, _NAN, _NAN, _NAN, continuity, code
+    )
+    if reason:
+        return nan_result(reason)
+    if n < 2:
+        return nan_result(R.TOO_FEW_POINTS)
+    if np.unique(x).size < 2:
+        return nan_result(R.SINGULAR_DESIGN)
+    s = _kendall_s(x, y)
+    y_ties = _tie_groups(y)
+    x_ties = _tie_groups(x)
+    var_s = (n * (n - 1) * (2 * n + 5) - float(np.sum(y_ties * (y_ties - 1) * (2 * y_ties + 5)))) / 18.0
+    n0 = n * (n - 1) / 2.0
+    tau_a = s / n0
+    n1 = float(np.sum(y_ties * (y_ties - 1) / 2.0))
+    n2 = float(np.sum(x_ties * (x_ties - 1) / 2.0))
+    denom_b = (n0 - n1) * (n0 - n2)
+    tau_b = float(s / np.sqrt(denom_b)) if denom_b > 0 else _NAN
+    if not var_s > 0:
+        return MannKendall(
+            n, s, var_s, tau_a, tau_b, _NAN, _NAN, _NAN, continuity,
+            R.join(R.CONSTANT_SERIES, R.ZERO_VARIANCE),
+        )
+    z = _mk_z(s, var_s, continuity)
+    p = float(2.0 * stats.norm.sf(abs(z)))
+    p_exact = _NAN
+    if y_ties.size == 0 and x_ties.size == 0 and n <= MANN_KENDALL_EXACT_MAX_N:
+        p_exact = min(1.0, 2.0 * mann_kendall_exact_sf(abs(s), n))
+    return MannKendall(n, s, var_s, tau_a, tau_b, float(z), p, p_exact, continuity, R.OK)
+
+
+@dataclass(frozen=True)
+class MannKendallHamedRaoLag1:
+    """Mann-Kendall test with the Hamed & Rao (1998) variance correction restricted to lag 1."""
+
+    n: int
+    hamed_rao_lag1_rank_autocorrelation: float  # r1 of the ranks of y - theil_sen_slope * x
+    hamed_rao_lag1_screened: bool  # True: r1 set to 0 because |r1| <= z_(1-alpha/2)/sqrt(n)
+    hamed_rao_lag1_correction_factor: float  # n / n*_s = 1 + 2 (n - 3) r1 / n
+    mann_kendall_hamed_rao_lag1_var_s: float  # Var(S) * correction factor
+    mann_kendall_hamed_rao_lag1_z: float
+    mann_kendall_hamed_rao_lag1_p_value: float
+    reason: str
+
+
+def _lag1_autocorrelation(v: np.ndarray) -> float:
+    vc = v - v.mean()
+    den = float(vc @ vc)
+    if not den > 0:
+        return _NAN
+    return float(vc[:-1] @ vc[1:]) / den
+
+
+def mann_kendall_hamed_rao_lag1(
+    x, y, continuity: bool = True, screen: bool = True, screen_alpha: float = 0.05
+) -> MannKendallHamedRaoLag1:
+    """Mann-Kendall p-value with the Hamed & Rao (1998) variance correction truncated at lag 1.
+
+    Hamed & Rao: Var*(S) = Var(S) * n/n*_s, n/n*_s = 1 + 2/(n(n-1)(n-2)) *
+    sum_{i=1}^{n-1} (n-i)(n-i-1)(n-i-2) rho_s(i), rho_s(i) the autocorrelation of the ranks of
+    the series detrended by Sen's slope. Only i = 1 is kept here, so
+    n/n*_s = 1 + 2 (n-3) rho_s(1) / n, with rho_s(1) = sum (R_t - Rbar)(R_{t+1} - Rbar) /
+    sum (R_t - Rbar)^2 (average ranks for ties); Var(S) is the tie-corrected one.
+    As in Hamed & Rao, only a significant rho_s(1) is used: with screen=True (default) it is set
+    to 0 when |rho_s(1)| <= z_(1-screen_alpha/2)/sqrt(n) (large-sample white-noise bound);
+    screen=False uses the estimate as is. A correction factor <= 0 gives NaN.
+    """
+    x, y, reason = _finite_pair(x, y)
+    n = int(x.size)
+
+    def nan_result(code: str, r1: float = _NAN, factor: float = _NAN) -> MannKendallHamedRaoLag1:
+        return MannKendallHamedRaoLag1(n, r1, False, factor, _NAN, _NAN, _NAN, code)
+
+    if reason:
+        return nan_result(reason)
+    if n < 3:
+        return nan_result(R.TOO_FEW_POINTS)
+    mk = mann_kendall(x, y, continuity=continuity)
+    ts = theil_sen_slope(x, y)
+    if not np.isfinite(ts.theil_sen_slope):
+        return nan_result(R.join(ts.reason, mk.reason))
+    detrended = y - ts.theil_sen_slope * x
+    ranks = stats.rankdata(detrended)
+    r1 = _lag1_autocorrelation(ranks)
+    if not np.isfinite(r1):  # detrended series constant (y exactly linear in x)
+        return nan_result(R.ZERO_VARIANCE)
+    screened = False
+    r1_used = r1
+    if screen and abs(r1) <= stats.norm.ppf(1.0 - screen_alpha / 2.0) / np.sqrt(n):
+        r1_used = 0.0
+        screened = True
+    factor = 1.0 + 2.0 * (n - 3) * r1_used / n
+    if not factor > 0:
+        return MannKendallHamedRaoLag1(n, r1, screened, factor, _NAN, _NAN, _NAN, R.NUMERICAL_FAILURE)
+    if not np.isfinite(mk.mann_kendall_var_s) or not mk.mann_kendall_var_s > 0:
+        return MannKendallHamedRaoLag1(
+            n, r1, screened, factor, _NAN, _NAN, _NAN, mk.reason or R.ZERO_VARIANCE
+        )
+    var_star = mk.mann_kendall_var_s * factor
+    z = _mk_z(mk.mann_kendall_s, var_star, continuity)
+    p = float(2.0 * stats.norm.sf(abs(z)))
+    return MannKendallHamedRaoLag1(n, r1, screened, factor, var_star, float(z), p, R.OK)
+
+
+# ----------------------------------------------------------------------------------------------
+# Baseline trend summary
+# ----------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class BaselineTrend:
+    """Trend diagnostics for one baseline series (x = session, y = outcome)."""
+
+    n: int
+    ols_slope: float
+    ols_intercept: float
+    ols_slope_se: float
+    ols_slope_p_value: float
+    theil_sen_slope: float
+    theil_sen_intercept: float
+    theil_sen_slope_low: float
+    theil_sen_slope_high: float
+    theil_sen_confidence: float
+    mann_kendall_s: float
+    mann_kendall_var_s: float
+    mann_kendall_tau_a: float
+    mann_kendall_tau_b: float
+    mann_kendall_z: float
+    mann_kendall_p_value: float
+    mann_kendall_p_value_exact: float
+    hamed_rao_lag1_rank_autocorrelation: float
+    hamed_rao_lag1_correction_factor: float
+    mann_kendall_hamed_rao_lag1_var_s: float
+    mann_kendall_hamed_rao_lag1_p_value: float
+    desired_direction: str | None
+    alpha: float
+    moves_in_therapeutic_direction: str  # "yes" / "no" / "unknown" (rule in baseline_trend)
+    moves_in_therapeutic_direction_hamed_rao_lag1: str  # same rule with the corrected p-value
+    ols_reason: str
+    theil_sen_reason: str
+    mann_kendall_reason: str
+    hamed_rao_reason: str
+    reason: str  # all component reasons joined
+
+
+def _therapeutic_flag(direction: str | None, slope: float, p_value: float, alpha: float) -> str:
+    if direction is None or not np.isfinite(slope):
+        return "unknown"
+    in_direction = slope > 0 if direction == "increase" else slope < 0
+    if not in_direction:
+        return "no"
+    if not np.isfinite(p_value):
+        return "unknown"
+    return "yes" if p_value < alpha else "no"
+
+
+def baseline_trend(
+    session,
+    outcome,
+    desired_direction: str | None,
+    alpha: float = 0.05,
+    confidence: float = 0.95,
+    continuity: bool = True,
+    hamed_rao_screen: bool = True,
+) -> BaselineTrend:
+    """OLS, Theil-Sen and Mann-Kendall trend of a baseline series, plus a therapeutic-trend flag.
+
+    moves_in_therapeutic_direction: "unknown" when desired_direction is None or the Theil-Sen
+    slope is undefined; "yes" when the Theil-Sen slope is strictly in the desired direction
+    (> 0 for "increase", < 0 for "decrease") AND the two-sided Mann-Kendall p-value (normal
+    approximation, continuity-corrected) is < alpha; "unknown" when the slope points the desired
+    way but the p-value is undefined; otherwise "no". The *_hamed_rao_lag1 flag applies the same
+    rule with the lag-1 Hamed-Rao corrected p-value.
+    """
+    direction = normalize_direction(desired_direction)
+    ols = ols_slope(session, outcome)
+    ts = theil_sen_slope(session, outcome, confidence=confidence)
+    mk = mann_kendall(session, outcome, continuity=continuity)
+    hr = mann_kendall_hamed_rao_lag1(session, outcome, continuity=continuity, screen=hamed_rao_screen)
+    flag = _therapeutic_flag(direction, ts.theil_sen_slope, mk.mann_kendall_p_value, alpha)
+    flag_hr = _therapeutic_flag(
+        direction, ts.theil_sen_slope, hr.mann_kendall_hamed_rao_lag1_p_value, alpha
+    )
+    return BaselineTrend(
+        n=mk.n,
+        ols_slope=ols.ols_slope,
+        ols_intercept=ols.ols_intercept,
+        ols_slope_se=ols.ols_slope_se,
+        ols_slope_p_value=ols.ols_slope_p_value,
+        theil_sen_slope=ts.theil_sen_slope,
+        theil_sen_intercept=ts.theil_sen_intercept,
+        theil_sen_slope_low=ts.theil_sen_slope_low,
+        theil_sen_slope_high=ts.theil_sen_slope_high,
+        theil_sen_confidence=ts.theil_sen_confidence,
+        mann_kendall_s=mk.mann_kendall_s,
+        mann_kendall_var_s=mk.mann_kendall_var_s,
+        mann_kendall_tau_a=mk.mann_kendall_tau_a,
+        mann_kendall_tau_b=mk.mann_kendall_tau_b,
+        mann_kendall_z=mk.mann_kendall_z,
+        mann_kendall_p_value=mk.mann_kendall_p_value,
+        mann_kendall_p_value_exact=mk.mann_kendall_p_value_exact,
+        hamed_rao_lag1_rank_autocorrelation=hr.hamed_rao_lag1_rank_autocorrelation,
+        hamed_rao_lag1_correction_factor=hr.hamed_rao_lag1_correction_factor,
+        mann_kendall_hamed_rao_lag1_var_s=hr.mann_kendall_hamed_rao_lag1_var_s,
+        mann_kendall_hamed_rao_lag1_p_value=hr.mann_kendall_hamed_rao_lag1_p_value,
+        desired_direction=direction,
+        alpha=alpha,
+        moves_in_therapeutic_direction=flag,
+        moves_in_therapeutic_direction_hamed_rao_lag1=flag_hr,
+        ols_reason=ols.reason,
+        theil_sen_reason=ts.reason,
+        mann_kendall_reason=mk.reason,
+        hamed_rao_reason=hr.reason,
+        reason=R.join(ols.reason, ts.reason, mk.reason, hr.reason),
+    )
+
+
+def _is_baseline(condition) -> np.ndarray:
+    return np.array([str(c).strip().lower() == "baseline" for c in np.asarray(condition).ravel()])
+
+
+def baseline_trends(
+    session,
+    outcome,
+    phase_index,
+    condition,
+    desired_direction: str | None,
+    alpha: float = 0.05,
+    **kwargs,
+) -> pd.DataFrame:
+    """One row per baseline phase (scope 'phase') and one for all baseline points (scope 'all_baseline').
+
+    Columns: scope, phase_index (<NA> for 'all_baseline'), n_phases, then the BaselineTrend fields.
+    Extra keyword arguments go to baseline_trend.
+    """
+    session = _as_float(session)
+    outcome = _as_float(outcome)
+    phase = np.asarray(phase_index).ravel()
+    is_base = _is_baseline(condition)
+    rows: list[dict] = []
+    base_phases = [p for p in pd.unique(phase[is_base])]
+    base_phases = sorted(base_phases)
+    for p in base_phases:
+        m = is_base & (phase == p)
+        bt = baseline_trend(session[m], outcome[m], desired_direction, alpha=alpha, **kwargs)
+        rows.append({"scope": "phase", "phase_index": int(p), "n_phases": 1, **asdict(bt)})
+    bt = baseline_trend(session[is_base], outcome[is_base], desired_direction, alpha=alpha, **kwargs)
+    row = {"scope": "all_baseline", "phase_index": pd.NA, "n_phases": len(base_phases), **asdict(bt)}
+    if not base_phases:
+        row["reason"] = R.join(R.EMPTY_PHASE, row["reason"])
+    rows.append(row)
+    df = pd.DataFrame(rows)
+    df["phase_index"] = df["phase_index"].astype("Int64")
+    return df
