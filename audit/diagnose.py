@@ -37,16 +37,20 @@ ProgressFn = Callable[[int, int], None]
 
 
 def _zone(d: np.ndarray, d_lower: float, d_upper: float) -> np.ndarray:
-    """DW zone from the bounds: positive / inconclusive_positive / none / inconclusive_negative / negative."""
+    """DW zone from the bounds, vectorised; same rule and precedence as ``durbin_watson.dw_test``.
+
+    d < dL positive; dL <= d <= dU inconclusive_positive; then the same with 4 - d on the
+    negative side; otherwise none (the positive side wins when both apply, as for small n).
+    """
     out = np.full(d.shape, "none", dtype=object)
     if not (np.isfinite(d_lower) and np.isfinite(d_upper)):
         out[:] = "unknown"
         return out
     dn = 4.0 - d
-    out[(d >= d_lower) & (d <= d_upper)] = "inconclusive_positive"
-    out[d < d_lower] = "positive"
-    out[(dn >= d_lower) & (dn <= d_upper)] = "inconclusive_negative"
+    out[dn <= d_upper] = "inconclusive_negative"
     out[dn < d_lower] = "negative"
+    out[d <= d_upper] = "inconclusive_positive"
+    out[d < d_lower] = "positive"
     out[~np.isfinite(d)] = "unknown"
     return out
 
@@ -121,7 +125,7 @@ def diagnose_group(Y: np.ndarray, design: CaseDesign, alpha: float, supplied_rho
     out["flip_any"] = np.logical_or.reduce([f.fillna(False).to_numpy(dtype=bool) for f in flips])
 
     # Durbin-Watson, exact, on the model residuals
-    d = _dw_rows(E)
+    d = _dw_rows(E, Y)
     p_pos, p_neg = dw_pvalues_batch(d, X)
     d_lower, d_upper = critical_bounds(n, k - 1, alpha)
     out["dw_statistic"] = d
@@ -138,7 +142,7 @@ def diagnose_group(Y: np.ndarray, design: CaseDesign, alpha: float, supplied_rho
     # DW for the outcome on session alone (what published studies usually report)
     X0 = X[:, :2]  # intercept and session: the first two columns of every case model
     E0 = Y - (Y @ np.linalg.pinv(X0).T) @ X0.T
-    d0 = _dw_rows(E0)
+    d0 = _dw_rows(E0, Y)
     p0_pos, _ = dw_pvalues_batch(d0, X0)
     out["dw_session_only_statistic"] = d0
     out["dw_session_only_p_positive"] = np.asarray(p0_pos, dtype=float)
@@ -172,13 +176,14 @@ def diagnose_group(Y: np.ndarray, design: CaseDesign, alpha: float, supplied_rho
     return pd.DataFrame(out)
 
 
-def _dw_rows(E: np.ndarray) -> np.ndarray:
+def _dw_rows(E: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """DW statistic per row; NaN where the residuals are zero relative to the data (exact fit, constant)."""
     num = np.sum(np.diff(E, axis=1) ** 2, axis=1)
     den = np.sum(E**2, axis=1)
-    scale = np.maximum(np.max(np.abs(E), axis=1), 1e-300) ** 2 * E.shape[1]
+    scale = np.max(np.abs(Y), axis=1) ** 2 * E.shape[1]
     with np.errstate(divide="ignore", invalid="ignore"):
         d = num / den
-    d[~(den > 1e-24 * scale)] = np.nan
+    d[~(den > 1e-20 * scale)] = np.nan
     return d
 
 
@@ -278,8 +283,40 @@ def phase_table(obs: pd.DataFrame) -> pd.DataFrame:
 
 def diagnose_case(session, outcome, phase_index, condition, design: str, phase_label=None, alpha: float = 0.05,
                   supplied_rho: float | None = None, power_rho: float = DEFAULT_POWER_RHO) -> dict:
-    """Per-case reference path: the same diagnostics for one case, as a dict."""
+    """Per-case reference path: the same diagnostics from the per-case functions (no batching).
+
+    Used in tests to check the batched path; slower, and it returns the main columns only.
+    """
+    from audit.ar1 import ar1_ml, ar1_reml
+    from audit.autocorrelation import residual_lag1
+    from audit.durbin_watson import dw_test
+    from audit.regression import gls_contrast_test, hac_contrast_test, ols_contrast_test, ols_fit
+
     des = case_design(np.asarray(session, float), np.asarray(phase_index), np.asarray(condition).astype(str), design,
                       None if phase_label is None else np.asarray(phase_label).astype(str))
-    frame = diagnose_group(np.asarray(outcome, float)[None, :], des, alpha, supplied_rho, power_rho)
-    return frame.iloc[0].to_dict()
+    y = np.asarray(outcome, float)
+    X, c = des.X, des.contrast
+    fit = ols_fit(y, X)
+    ols = ols_contrast_test(y, X, c, alpha)
+    reml = ar1_reml(y, X)
+    gls = gls_contrast_test(y, X, c, reml.rho, alpha)
+    hac = hac_contrast_test(y, X, c, alpha)
+    dw = dw_test(fit.residuals, X, alpha, scale=float(np.max(np.abs(y))))
+    r1 = residual_lag1(fit.residuals, X, y)
+    out = {
+        "model": des.model, "n_obs": des.n_obs, "n_params": des.n_params,
+        "effect_ols_estimate": ols.estimate, "effect_ols_std_error": ols.std_error, "effect_ols_p_value": ols.p_value,
+        "ar1_reml_rho": reml.rho, "ar1_ml_rho": ar1_ml(y, X).rho,
+        "effect_gls_reml_estimate": gls.estimate, "effect_gls_reml_std_error": gls.std_error,
+        "effect_gls_reml_p_value": gls.p_value,
+        "effect_hac_std_error": hac.std_error, "effect_hac_p_value": hac.p_value,
+        "dw_statistic": dw.statistic, "dw_p_positive": dw.p_positive, "dw_p_negative": dw.p_negative,
+        "dw_d_lower": dw.d_lower, "dw_d_upper": dw.d_upper, "dw_zone": dw.zone,
+        "dw_power": dw_power(X, power_rho, alpha),
+        "r1_residual": r1.r1, "r1_null_mean": r1.null_mean, "r1_null_variance": r1.null_variance,
+        "r1_corrected": r1.r1_corrected,
+    }
+    if supplied_rho is not None:
+        sup = gls_contrast_test(y, X, c, supplied_rho, alpha)
+        out.update({"effect_gls_supplied_estimate": sup.estimate, "effect_gls_supplied_p_value": sup.p_value})
+    return out
