@@ -111,7 +111,8 @@ def _design_basis(x: np.ndarray) -> tuple[np.ndarray | None, bool, str]:
     if s[0] == 0 or s[-1] <= _RANK_RTOL * s[0]:
         return None, False, R.SINGULAR_DESIGN
     basis = u[:, k:]
-    has_intercept = bool(np.linalg.norm(basis.T @ np.full(n, 1.0 / math.sqrt(n))) <= _INTERCEPT_ATOL)
+    ones = np.full(n, 1.0 / math.sqrt(n))
+    has_intercept = bool(np.linalg.norm(basis.T @ ones) <= _INTERCEPT_ATOL)
     return basis, has_intercept, R.OK
 
 
@@ -176,7 +177,8 @@ def dw_null_eigenvalues(design) -> np.ndarray:
 
 
 @lru_cache(maxsize=4096)
-def _critical_bounds_cached(n: int, kprime: int, alpha: float, intercept: bool) -> tuple[float, float]:
+def _critical_bounds_cached(n: int, kprime: int, alpha: float,
+                           intercept: bool) -> tuple[float, float]:
     k = kprime + 1 if intercept else kprime
     if n - k < 2 or kprime < 0 or not (0.0 < alpha < 1.0):
         return (math.nan, math.nan)
@@ -277,7 +279,8 @@ def _resolve_eigs(design, null_eigenvalues) -> np.ndarray:
     return mu
 
 
-def dw_pvalues_batch(statistics, design=None, *, null_eigenvalues=None) -> tuple[np.ndarray, np.ndarray]:
+def dw_pvalues_batch(statistics, design=None, *,
+                     null_eigenvalues=None) -> tuple[np.ndarray, np.ndarray]:
     """Exact p-values (p_positive, p_negative) for many Durbin-Watson statistics at once.
 
     statistics: (m,).  Give either the design shared by all cases, or null_eigenvalues as
@@ -323,7 +326,8 @@ def dw_power(design, rho: float, alpha: float = 0.05) -> float:
     def excess(c: float) -> float:
         return prob_quadform_below_zero(mu - c) - target
 
-    c = optimize.brentq(excess, mu[0], mu[-1], xtol=1e-14, rtol=4 * np.finfo(float).eps, maxiter=200)
+    c = optimize.brentq(excess, mu[0], mu[-1], xtol=1e-14, rtol=4 * np.finfo(float).eps,
+                        maxiter=200)
     a = np.diag(np.r_[1.0, np.full(n - 2, 2.0), 1.0]) - np.eye(n, k=1) - np.eye(n, k=-1)
     m_proj = basis @ basis.T
     w, v = np.linalg.eigh(_ar1_corr(n, np.array([rho]))[0])
@@ -338,9 +342,10 @@ def dw_power_grid(design, rhos, alpha: float = 0.05) -> np.ndarray:
     """Exact power of the exact Durbin-Watson test for a grid of AR(1) coefficients (batch).
 
     Same definition as ``dw_power``, computed in the (n-k)-dimensional residual space: with
-    B = N'AN and G = N'SN = LL' (Cholesky), the form's eigenvalues are those of
-    L'(B - cI)L; all rhos go to the Imhof routine in one call.  Critical values by
-    ``ratio_quantile``.  Returns an array like rhos (NaN where |rho| >= 1 or degenerate).
+    B = N'AN and G = N'SN = LL' (Cholesky), the form's nonzero eigenvalues are those of
+    L'(B - cI)L (stacked over rhos); all rhos go to the Imhof routine in one call.
+    Critical values by ``ratio_quantile``.  Returns an array shaped like rhos (NaN where
+    |rho| >= 1 or the design is degenerate).
     """
     x = _as_design(design)
     n, k = x.shape
@@ -360,13 +365,19 @@ def dw_power_grid(design, rhos, alpha: float = 0.05) -> np.ndarray:
         mu = np.clip(np.linalg.eigvalsh(b), 0.0, 4.0)
         c_low, c_high = ratio_quantile(np.vstack([mu, mu]), np.array([alpha, 1.0 - alpha]))
         rr = r[use]
-        g = basis.T @ _ar1_corr(n, rr) @ basis  # (u, p, p)
-        chol = np.linalg.cholesky(0.5 * (g + np.swapaxes(g, 1, 2)))
         p = b.shape[0]
+        s_n = (_ar1_corr(n, rr).reshape(-1, n) @ basis).reshape(rr.size, n, p)
+        g = basis.T @ s_n  # N'SN, (u, p, p), positive definite for |rho| < 1
+        g = 0.5 * (g + np.swapaxes(g, 1, 2))
+        try:
+            root = np.linalg.cholesky(g)  # G = LL'; L'CL has the eigenvalues of C G
+        except np.linalg.LinAlgError:  # |rho| extremely close to 1: symmetric root instead
+            gw, gv = np.linalg.eigh(g)
+            root = (gv * np.sqrt(np.clip(gw, 0.0, None))[:, None, :]) @ np.swapaxes(gv, 1, 2)
         c = np.where(rr > 0, c_low, c_high)
         sign = np.where(rr > 0, 1.0, -1.0)
         cmat = sign[:, None, None] * (b[None, :, :] - c[:, None, None] * np.eye(p)[None])
-        form = np.swapaxes(chol, 1, 2) @ cmat @ chol
+        form = np.swapaxes(root, 1, 2) @ cmat @ root
         lam = np.linalg.eigvalsh(0.5 * (form + np.swapaxes(form, 1, 2)))
         out[use] = prob_quadform_below_zero(lam)
     return out.reshape(shape)

@@ -58,7 +58,7 @@ _PANEL_WIDTH = 1.5
 _MAX_SPLIT = 12
 _FIRST_PANEL_END = 0.5  # in units of 1 / sqrt(sum lam^2)
 # Block size (rows * nodes * p) for the vectorised evaluation, to bound memory use.
-_BLOCK_ELEMENTS = 1_500_000
+_BLOCK_ELEMENTS = 100_000
 
 # 15-point Gauss-Kronrod rule on [-1, 1] with its embedded 7-point Gauss rule (QUADPACK qk15).
 _XGK = np.array([
@@ -302,13 +302,14 @@ def prob_quadform_below_zero_pan(eigenvalues) -> np.ndarray | float:
 # ----------------------------------------------------------------------------- quantiles
 
 
-def ratio_quantile(eigenvalues, prob, *, xtol: float = 1e-13, max_iter: int = 100) -> np.ndarray:
+def ratio_quantile(eigenvalues, prob, *, xtol: float = 1e-13, ftol: float = 1e-15,
+                   max_iter: int = 100) -> np.ndarray:
     """Quantile c of R = sum mu_j z_j^2 / sum z_j^2 with P(R < c) = prob, vectorised over rows.
 
     P(R < c) = P(sum (mu_j - c) z_j^2 < 0) is evaluated by ``prob_quadform_below_zero``;
     the root is bracketed by [min mu, max mu] and found by the Illinois (modified regula
     falsi) method, started at the normal approximation, until the secant step or the bracket
-    is below xtol.
+    is below xtol or |P(R < c) - prob| <= ftol.
     eigenvalues: (p,) or (m, p) with NaN padding; prob: scalar or (m,).  NaN where a row has
     fewer than two distinct values or prob is outside (0, 1).
     """
@@ -352,7 +353,7 @@ def ratio_quantile(eigenvalues, prob, *, xtol: float = 1e-13, max_iter: int = 10
         if act.size == 0:
             break
         fx = cdf(act, x[act]) - tgt[act]
-        exact = fx == 0
+        exact = np.abs(fx) <= ftol
         left = fx < 0  # root lies above x
         # Update bracket.
         a_new = np.where(left, x[act], a[act])
@@ -376,8 +377,10 @@ def ratio_quantile(eigenvalues, prob, *, xtol: float = 1e-13, max_iter: int = 10
             # Guard: stay strictly inside the bracket; fall back to bisection if not.
             bad = ~np.isfinite(xn) | (xn <= a[go]) | (xn >= b[go])
             xn = np.where(bad, 0.5 * (a[go] + b[go]), xn)
-            # Converged when the secant step is below xtol: accept the new point.
-            small = ~bad & (np.abs(xn - x[go]) <= 0.5 * xtol)
+            # Converged when the secant step (or a bisection fallback in an already narrow
+            # bracket, where rounding noise in P stalls the secant) is below xtol.
+            small = (~bad & (np.abs(xn - x[go]) <= 0.5 * xtol)) | (
+                bad & (b[go] - a[go] < 1e2 * xtol))
             result[go[small]] = xn[small]
             done[go[small]] = True
             x[go] = xn
