@@ -259,7 +259,7 @@ def nap(baseline, treatment, desired_direction: str | None = None, confidence: f
     se = hanley_mcneil_se(value, a.size, b.size)
     z = stats.norm.ppf(0.5 + confidence / 2.0)
     lo_n, hi_n = newcombe_nap_interval(value, a.size, b.size, confidence)
-    return NAP(value, pos, ties, npairs, se, max(0.0, value - z * se), min(1.0, value + z * se),
+    return NAP(value, pos, ties, npairs, se, float(max(0.0, value - z * se)), float(min(1.0, value + z * se)),
                lo_n, hi_n, confidence, direction, assumed, R.OK)
 
 
@@ -525,7 +525,7 @@ def log_response_ratio(
         imp = sign * lbc
         se = float(np.sqrt(var)) if np.isfinite(var) and var >= 0 else _NAN
         zq = stats.norm.ppf(0.5 + confidence / 2.0)
-        lo, hi = (imp - zq * se, imp + zq * se) if np.isfinite(se) else (_NAN, _NAN)
+        lo, hi = (float(imp - zq * se), float(imp + zq * se)) if np.isfinite(se) else (_NAN, _NAN)
         z = imp / se if np.isfinite(se) and se > 0 else _NAN
         p = _two_sided_normal_p(abs(z))
         z_adj = imp / np.sqrt(var_adj) if np.isfinite(var_adj) and var_adj > 0 else _NAN
@@ -846,10 +846,11 @@ def phase_contrasts(phase_index, condition, design: str | None) -> list[dict]:
     return out
 
 
-def phase_mean_residual_lag1(outcome, phase_index) -> tuple[float, str]:
-    """Lag-1 autocorrelation of residuals from phase means, lag pairs taken within phases only.
+def phase_mean_residual_lag1(outcome, phase_index, within_groups_only: bool = True) -> tuple[float, str]:
+    """Lag-1 autocorrelation of residuals from group (phase) means, in session order.
 
-    r1 = sum_{t, t+1 same phase} e_t e_{t+1} / sum_t e_t^2 (series in session order).
+    r1 = sum_{t, t+1} e_t e_{t+1} / sum_t e_t^2, lag pairs taken within groups only unless
+    within_groups_only=False (used with condition groups for alternating designs).
     """
     y = np.asarray(outcome, dtype=float).ravel()
     phase = np.asarray(phase_index).ravel()
@@ -859,7 +860,7 @@ def phase_mean_residual_lag1(outcome, phase_index) -> tuple[float, str]:
     for p in pd.unique(phase):
         m = phase == p
         e[m] = y[m] - y[m].mean()
-    same = phase[1:] == phase[:-1]
+    same = phase[1:] == phase[:-1] if within_groups_only else np.ones(max(y.size - 1, 0), dtype=bool)
     if not same.any():
         return _NAN, R.TOO_FEW_POINTS
     den = float(e @ e)
@@ -894,7 +895,8 @@ def case_effect_sizes(
     sum w^2 Var_adj / (sum w)^2, so the estimate is the same); SMDs and the mean difference simple
     means (mean difference: Var = sum SE_c^2 / K^2, Welch-Satterthwaite df).
     rho: the case's AR(1) estimate; when None, the lag-1 autocorrelation of residuals from phase
-    means (phase_mean_residual_lag1) is used and so recorded in rho_method.
+    means (phase_mean_residual_lag1; condition means over all lags for alternating designs) is
+    used and so recorded in rho_method.
     """
     session = np.asarray(session, dtype=float).ravel()
     y = np.asarray(outcome, dtype=float).ravel()
@@ -904,7 +906,11 @@ def case_effect_sizes(
     session, y, phase, cond = session[order], y[order], phase[order], cond[order]
     direction, assumed = resolve_direction(desired_direction)
 
-    if rho is None:
+    if rho is None and _is_alternating(design):
+        groups = np.array([str(c).strip().lower() for c in cond])
+        rho_input, rho_reason = phase_mean_residual_lag1(y, groups, within_groups_only=False)
+        rho_method = "condition_mean_residual_lag1"
+    elif rho is None:
         rho_input, rho_reason = phase_mean_residual_lag1(y, phase)
         rho_method = "phase_mean_residual_lag1"
     else:
@@ -946,13 +952,12 @@ def case_effect_sizes(
         "aggregation": "PND: pooled over treatment points; NAP/Tau/Tau-U: weighted by nA*nB; "
                        "LRR: inverse-variance (fixed effect); SMD and mean difference: simple mean",
     }
-    case.update(_aggregate(results, alpha, rho_used))
-    if not results:
-        case["reason"] = R.NO_CONTRAST
+    case.update(_aggregate(results, alpha))
+    case["reason"] = R.OK if results else R.NO_CONTRAST
     return per_contrast, case
 
 
-def _aggregate(results: list[ContrastEffectSizes], alpha: float, rho_used: float) -> dict:
+def _aggregate(results: list[ContrastEffectSizes], alpha: float) -> dict:
     out: dict = {}
     if not results:
         keys = ["pnd_percent", "nap", "nap_se_hanley_mcneil", "tau", "tau_p_value", "tau_p_value_adjusted",
@@ -1058,6 +1063,5 @@ def _aggregate(results: list[ContrastEffectSizes], alpha: float, rho_used: float
     out["mean_difference_reason"] = R.OK if np.isfinite(p) else R.join(
         *[r.mean_difference.welch_reason for r in results])
     out["mean_difference_reason_adjusted"] = R.OK if np.isfinite(pa) else R.join(
-        *[r.mean_difference.welch_reason_adjusted for r in results]) or (
-        R.NON_FINITE_INPUT if not np.isfinite(rho_used) else R.TOO_FEW_POINTS)
+        *[r.mean_difference.welch_reason_adjusted for r in results])
     return out
