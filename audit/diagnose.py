@@ -27,6 +27,8 @@ from audit.ar1 import ar1_batch
 from audit.asymptotic_tests import breusch_godfrey_batch, ljung_box_batch
 from audit.autocorrelation import phase_lag1_batch, residual_lag1_batch
 from audit.design import CaseDesign, case_design
+from audit.effect_sizes import case_effect_sizes
+from audit.trend import baseline_trends
 from audit.durbin_watson import critical_bounds, dw_power, dw_pvalues_batch, dw_statistic
 from audit.regression import gls_contrast_batch, hac_contrast_batch, ols_contrast_batch
 
@@ -252,8 +254,63 @@ def diagnose_cases(observations: pd.DataFrame, alpha: float = 0.05, supplied_rho
             progress(done, len(pieces))
     stats_frame = pd.concat(parts).sort_index() if parts else pd.DataFrame()
     cases = pd.concat([ident, stats_frame.reset_index(drop=True)], axis=1)
+    rho_for_effects = cases["ar1_reml_rho"].to_numpy(dtype=float) if len(cases) else np.array([])
+    effect_rows, trend_rows, contrast_parts, phase_trend_parts = [], [], [], []
+    for i, (key, sl) in enumerate(pieces):
+        row = ident.iloc[i]
+        rho_i = rho_for_effects[i]
+        per_contrast, case_es = case_effect_sizes(
+            sess[sl], yv[sl], ph[sl], cond[sl], design_col[sl.start], row["desired_direction"], row["outcome_scale"],
+            rho=float(rho_i) if np.isfinite(rho_i) else None, alpha=alpha)
+        effect_rows.append(case_es)
+        per_contrast.insert(0, "case_key", key)
+        contrast_parts.append(per_contrast)
+        trends = baseline_trends(sess[sl], yv[sl], ph[sl], cond[sl], row["desired_direction"], alpha=alpha)
+        overall = trends[trends["scope"] == "all_baseline"]
+        trend_rows.append(overall.iloc[0].to_dict() if len(overall) else {})
+        per_phase = trends[trends["scope"] == "phase"].copy()
+        per_phase.insert(0, "case_key", key)
+        phase_trend_parts.append(per_phase)
+    cases = pd.concat([cases, _effect_columns(effect_rows), _trend_columns(trend_rows)], axis=1)
     phases = phase_table(obs)
-    return {"cases": cases, "phases": phases}
+    if phase_trend_parts:
+        pt = pd.concat(phase_trend_parts, ignore_index=True)
+        keep = ["case_key", "phase_index"] + [c for c in TREND_COLUMNS if c in pt]
+        pt = pt[keep].rename(columns={c: f"trend_{c}" for c in TREND_COLUMNS})
+        pt["phase_index"] = pt["phase_index"].astype("int64")
+        phases = phases.merge(pt, on=["case_key", "phase_index"], how="left")
+    contrasts = pd.concat(contrast_parts, ignore_index=True) if contrast_parts else pd.DataFrame({"case_key": []})
+    return {"cases": cases, "phases": phases, "contrasts": contrasts}
+
+
+TREND_COLUMNS = [
+    "ols_slope", "ols_slope_p_value", "theil_sen_slope", "theil_sen_slope_low", "theil_sen_slope_high",
+    "mann_kendall_s", "mann_kendall_tau_b", "mann_kendall_p_value", "mann_kendall_hamed_rao_lag1_p_value",
+    "moves_in_therapeutic_direction", "moves_in_therapeutic_direction_hamed_rao_lag1", "reason",
+]
+_EFFECT_RENAMES = {
+    "tau_flip": "flip_tau", "tau_u_flip": "flip_tau_u", "lrr_flip": "flip_lrr",
+    "mean_difference_welch_flip": "flip_mean_difference", "lrr_improvement": "lrr", "reason": "effect_sizes_reason",
+}
+_EFFECT_DROP = ["design", "desired_direction", "outcome_scale", "alpha", "aggregation"]
+
+
+def _effect_columns(rows: list[dict]) -> pd.DataFrame:
+    """Case-level effect sizes (audit.effect_sizes.case_effect_sizes), flips named flip_*."""
+    frame = pd.DataFrame(rows).drop(columns=_EFFECT_DROP, errors="ignore").rename(columns=_EFFECT_RENAMES)
+    if "lrr_se" in frame:
+        frame["lrr_variance"] = frame["lrr_se"] ** 2
+    for col in [c for c in frame if c.startswith("flip_")]:
+        frame[col] = frame[col].astype("boolean")
+    return frame
+
+
+def _trend_columns(rows: list[dict]) -> pd.DataFrame:
+    """Trend of all baseline points together (audit.trend.baseline_trends, scope all_baseline)."""
+    frame = pd.DataFrame([{c: r.get(c, np.nan) for c in TREND_COLUMNS} for r in rows])
+    frame = frame.rename(columns={c: f"baseline_{c}" for c in TREND_COLUMNS})
+    frame["baseline_moves_in_therapeutic_direction"] = frame["baseline_moves_in_therapeutic_direction"].fillna("unknown")
+    return frame
 
 
 def phase_table(obs: pd.DataFrame) -> pd.DataFrame:

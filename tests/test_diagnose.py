@@ -192,3 +192,24 @@ def test_gls_keeps_type_one_error_closer_to_nominal_than_ols_under_ar1():
     gls = (out["effect_gls_reml_p_value"] < 0.05).mean()
     assert abs(gls - 0.05) < abs(ols - 0.05)
     assert ols > 0.08  # OLS is liberal under positive dependence (Monte Carlo SE about 0.006)
+
+
+def test_effect_sizes_and_baseline_trend_join_the_case_table(fixture_tables):
+    from scipy.stats import mannwhitneyu
+
+    obs, tables = fixture_tables
+    cases = tables["cases"].set_index("case_key")
+    ab = cases[(cases["design"] == "AB") | (cases["design"] == "multiple_baseline")]
+    assert len(ab) >= 2
+    for key, row in ab.iterrows():
+        part = obs[obs["case_key"] == key]
+        a = part.loc[part["condition"] == "baseline", "outcome"].to_numpy()
+        b = part.loc[part["condition"] == "treatment", "outcome"].to_numpy()
+        if row["desired_direction"] == "decrease":
+            a, b = -a, -b
+        u = mannwhitneyu(b, a).statistic
+        # source: scipy.stats.mannwhitneyu; NAP = U / (nA nB) and Tau = 2 NAP - 1
+        assert row["nap"] == pytest.approx(u / (len(a) * len(b)), abs=1e-12)
+        assert row["tau"] == pytest.approx(2 * row["nap"] - 1, abs=1e-12)
+    assert set(cases["baseline_moves_in_therapeutic_direction"]) <= {"yes", "no", "unknown"}
+    assert {"case_key", "contrast", "nap", "tau"} <= set(tables["contrasts"].columns)
