@@ -1,0 +1,607 @@
+"""Whole audit runs with content-hash reuse: the plain sequential path and the steps flows reuse.
+
+A case's hash is the SHA-256 of its clean observation values, the run parameters and the code
+version (:func:`case_hashes`). A rerun looks the hashes up in the latest committed run
+(:meth:`audit.store.ResultsStore.reusable`) and diagnoses only the cases it does not find; the
+reused rows are copied into the new run, so every run is complete on its own.
+
+Reuse assumes a case's diagnostics depend only on its own rows, the parameters and the code:
+``diagnose_cases`` of a batch must give, for each case, what it gives for that case alone.
+
+The steps (:func:`find_inputs`, :func:`read_input_file`, :func:`combine_reads`, :func:`plan_run`,
+:func:`diagnose_batch`, :func:`summary_tables`, :func:`write_run`, :func:`write_report`) are
+plain functions; :func:`run_audit` chains them sequentially and ``flows.review`` runs the same
+functions as Prefect tasks, so both paths write the same store content.
+"""
+
+from __future__ import annotations
+
+import ast
+import dataclasses
+import hashlib
+import importlib
+import inspect
+import logging
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from audit import __version__
+from audit.config import AuditConfig
+from audit.ingest import FileProblem, FileRead, InputError, read_input_file
+from audit.intake import ReviewInput, combine, read_files
+from audit.store import ResultsStore, content_hash, file_sha256
+
+__all__ = [
+    "DEFAULT_BATCH_SIZE",
+    "ReusePlan",
+    "RunSummary",
+    "case_batches",
+    "case_hashes",
+    "code_version",
+    "combine_reads",
+    "diagnose_batch",
+    "find_inputs",
+    "input_hashes",
+    "open_store",
+    "plan_run",
+    "read_and_hash",
+    "read_input_file",
+    "run_audit",
+    "split_for_reuse",
+    "summary_tables",
+    "write_report",
+    "write_run",
+]
+
+log = logging.getLogger(__name__)
+
+DEFAULT_BATCH_SIZE = 100
+HASH_KEY = "case_hash"
+# Provenance only: where a point came from does not change its diagnostics, so renaming or
+# moving a file (or re-ordering its rows) does not force a recomputation.
+HASH_EXCLUDED_COLUMNS = ("source_file", "source_sheet", "source_row")
+# Tables written by every run that are not per-case diagnostics (never reused).
+INPUT_TABLES = ("observations", "quarantine", "adjustments")
+
+Diagnose = Callable[..., Mapping[str, pd.DataFrame]]
+Progress = Callable[[str, int, int], None]  # (stage, done, total); stages "read", "diagnose"
+
+
+# ----------------------------------------------------------------------------------- results
+
+
+@dataclass(frozen=True)
+class RunSummary:
+    """What one committed run did: its id, where it is, and its counts."""
+
+    run_id: str
+    store: Path
+    cases_audited: int
+    cases_reused: int
+    cases_computed: int
+    cases_quarantined: int
+    rows_read: int
+    rows_accepted: int
+    rows_quarantined: int
+    flips: int | None
+    input_problems: int
+    tables: tuple[str, ...]
+    report: Path | None = None
+
+    @property
+    def has_quarantine(self) -> bool:
+        """True when some input was left out (quarantined rows or cases, unusable paths)."""
+        return bool(self.rows_quarantined or self.cases_quarantined or self.input_problems)
+
+    def closing_line(self) -> str:
+        """One line for people: cases audited, reused, quarantined, flips and where the results are."""
+        flips = "n/a" if self.flips is None else str(self.flips)
+        text = (
+            f"Audited {self.cases_audited} case(s): {self.cases_reused} reused, "
+            f"{self.cases_computed} computed; {self.cases_quarantined} quarantined; "
+            f"{flips} flip(s). Results: {self.store} (run {self.run_id})"
+        )
+        if self.report is not None:
+            text += f"; report: {self.report}"
+        return text
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain-data view (paths as strings)."""
+        return {
+            "run_id": self.run_id,
+            "store": str(self.store),
+            "cases_audited": self.cases_audited,
+            "cases_reused": self.cases_reused,
+            "cases_computed": self.cases_computed,
+            "cases_quarantined": self.cases_quarantined,
+            "rows_read": self.rows_read,
+            "rows_accepted": self.rows_accepted,
+            "rows_quarantined": self.rows_quarantined,
+            "flips": self.flips,
+            "input_problems": self.input_problems,
+            "tables": list(self.tables),
+            "report": None if self.report is None else str(self.report),
+        }
+
+
+@dataclass
+class ReusePlan:
+    """Which cases a run diagnoses and which it copies from the latest committed run."""
+
+    code_version: str
+    hashes: pd.Series  # case_key -> case_hash, every accepted case
+    to_compute: pd.DataFrame  # observations of the cases to diagnose
+    reused: dict[str, pd.DataFrame] = field(default_factory=dict)  # table -> rows copied
+    source_run: str | None = None
+
+    @property
+    def n_reused(self) -> int:
+        cases = self.reused.get("cases")
+        return 0 if cases is None else int(len(cases))
+
+    @property
+    def n_to_compute(self) -> int:
+        return int(self.to_compute["case_key"].nunique()) if len(self.to_compute) else 0
+
+
+# ----------------------------------------------------------------------------------- hashing
+
+
+def _audit_imports(path: Path) -> set[str]:
+    """Names of the audit modules a source file imports (anywhere in it, relative imports too)."""
+    tree = ast.parse(path.read_bytes(), filename=str(path))
+    found: set[str] = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            for alias in node.names:
+                if alias.name.startswith("audit."):
+                    found.add(alias.name.split(".")[1])
+        elif isinstance(node, ast.ImportFrom):
+            module = node.module or ""
+            if node.level == 1 or module == "audit":  # from . import x / from audit import x
+                if module and node.level == 1:
+                    found.add(module.split(".")[0])
+                else:
+                    found.update(alias.name for alias in node.names)
+            elif module.startswith("audit."):
+                found.add(module.split(".")[1])
+    return found
+
+
+def code_version(entry: str = "diagnose") -> str:
+    """Package version plus a digest of the source of ``audit.<entry>`` and every audit module it imports.
+
+    Any edit to the per-case statistics (or to the package data files) changes it, so a rerun
+    after such a change recomputes every case; edits elsewhere (CLI, summary, report) do not.
+    """
+    root = Path(__file__).resolve().parent
+    todo, seen = [entry], set()
+    while todo:
+        name = todo.pop()
+        if name in seen or not (root / f"{name}.py").is_file():
+            continue
+        seen.add(name)
+        todo.extend(_audit_imports(root / f"{name}.py") - seen)
+    files = [root / f"{name}.py" for name in sorted(seen)]
+    data = root / "data"
+    if data.is_dir():
+        files += sorted(p for p in data.rglob("*") if p.is_file() and "__pycache__" not in p.parts)
+    h = hashlib.sha256()
+    for path in files:
+        h.update(str(path.relative_to(root)).encode())
+        h.update(b"\0")
+        h.update(path.read_bytes())
+        h.update(b"\0")
+    return f"{__version__}+src.{h.hexdigest()[:12]}"
+
+
+def _canonical(observations: pd.DataFrame) -> pd.DataFrame:
+    """Observation columns that matter for results, with dtypes fixed (numbers float64, the rest text).
+
+    Fixing dtypes keeps a case's hash stable when the review around it changes (e.g. a column
+    that was all empty becomes text once another file fills it).
+    """
+    cols = sorted(c for c in observations.columns if c not in HASH_EXCLUDED_COLUMNS)
+    out = {}
+    for col in cols:
+        s = observations[col]
+        if pd.api.types.is_bool_dtype(s) or pd.api.types.is_numeric_dtype(s):
+            out[col] = pd.Series(s.to_numpy(dtype=float, na_value=np.nan), dtype="float64")
+        else:
+            values = [("\0NA" if v is None or (isinstance(v, float) and np.isnan(v)) or v is pd.NA else str(v))
+                      for v in s.to_numpy(dtype=object)]
+            out[col] = pd.Series(values, dtype=object)
+    return pd.DataFrame(out)
+
+
+def case_hashes(observations: pd.DataFrame, parameters: Mapping[str, Any], code_version: str) -> pd.Series:
+    """case_key -> SHA-256 of the case's observation values, the parameters and the code version.
+
+    Uses :func:`audit.store.content_hash` on each case's rows (in session order, provenance
+    columns source_file/source_sheet/source_row left out, dtypes fixed).
+    """
+    if observations.empty:
+        return pd.Series([], index=pd.Index([], name="case_key", dtype=object), name=HASH_KEY, dtype=object)
+    obs = observations.sort_values(["case_key", "session"], kind="stable").reset_index(drop=True)
+    canon = _canonical(obs)
+    keys = obs["case_key"].to_numpy()
+    bounds = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1], True])
+    params = dict(parameters)
+    out = {}
+    for start, stop in zip(bounds[:-1], bounds[1:]):
+        part = canon.iloc[start:stop].reset_index(drop=True)
+        out[str(keys[start])] = content_hash(part, params, str(code_version))
+    series = pd.Series(out, name=HASH_KEY, dtype=object)
+    series.index.name = "case_key"
+    return series
+
+
+def input_hashes(files: Iterable[FileRead | str | Path]) -> dict[str, str]:
+    """Input file -> SHA-256 of its bytes (the run record's input_hashes)."""
+    out: dict[str, str] = {}
+    for f in files:
+        path = f.path if isinstance(f, FileRead) else Path(f)
+        try:
+            out[str(path)] = file_sha256(path)
+        except OSError:
+            out[str(path)] = ""
+    return out
+
+
+# ----------------------------------------------------------------------------------- store
+
+
+def _optional(module: str, name: str) -> Any | None:
+    """``module.name`` when the module exists, else None (errors inside the module still raise)."""
+    try:
+        mod = importlib.import_module(module)
+    except ModuleNotFoundError as exc:
+        if exc.name == module:
+            return None
+        raise
+    return getattr(mod, name, None)
+
+
+def _validators() -> dict[str, Callable[[pd.DataFrame], pd.DataFrame]]:
+    """Table name -> pandera validation for every table that has a schema."""
+    from schemas.tables import Adjustments, Observations, Quarantine
+
+    models: dict[str, Any] = {
+        "observations": Observations,
+        "quarantine": Quarantine,
+        "adjustments": Adjustments,
+    }
+    try:
+        results = importlib.import_module("schemas.results")
+    except ModuleNotFoundError as exc:
+        if exc.name != "schemas.results":
+            raise
+        results = None
+    if results is not None:
+        declared = getattr(results, "TABLE_SCHEMAS", None)
+        if isinstance(declared, Mapping):
+            models.update(declared)
+        else:
+            for table, cls_name in (("cases", "CaseResults"), ("phases", "PhaseResults"),
+                                    ("contrasts", "ContrastResults"), ("summary*", "SummaryResults")):
+                model = getattr(results, cls_name, None)
+                if model is not None:
+                    models[table] = model
+    return {name: (lambda df, m=model: m.validate(df, lazy=True)) for name, model in models.items()}
+
+
+def open_store(path: str | Path) -> ResultsStore:
+    """The results store at ``path`` with the pandera schema of every table as its validators."""
+    return ResultsStore(path, validators=_validators())
+
+
+def _diagnostic_tables(store: ResultsStore) -> list[str]:
+    """Per-case result tables of the latest committed run (every table but the input-side ones)."""
+    try:
+        tables = store.tables("latest")
+    except LookupError:
+        return []
+    return [t for t in tables if t not in INPUT_TABLES and not t.startswith("summary")]
+
+
+def split_for_reuse(
+    observations: pd.DataFrame, hashes: pd.Series, store: ResultsStore | None
+) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
+    """Observations of the cases to diagnose, and the rows reused from the latest run, per table.
+
+    A case is reused when its hash is in the latest run's ``cases`` table; its rows of every
+    other diagnostics table of that run come along (matched by ``case_hash``).
+    """
+    if store is None or hashes.empty:
+        return observations, {}
+    tables = _diagnostic_tables(store)
+    if "cases" not in tables:
+        return observations, {}
+    try:
+        previous = store.reusable("cases", hashes.to_numpy())
+    except KeyError:  # the latest run's cases carry no case_hash: nothing to match
+        return observations, {}
+    if previous.empty:
+        return observations, {}
+    found = set(previous[HASH_KEY])
+    reuse_keys = set(hashes.index[hashes.isin(found)])
+    reused = {"cases": previous}
+    wanted = hashes[hashes.index.isin(reuse_keys)].to_numpy()
+    for table in tables:
+        if table == "cases":
+            continue
+        try:
+            rows = store.reusable(table, wanted)
+        except KeyError:
+            continue
+        if len(rows):
+            reused[table] = rows.reset_index(drop=True)
+    to_compute = observations.loc[~observations["case_key"].isin(reuse_keys)].reset_index(drop=True)
+    return to_compute, reused
+
+
+# ----------------------------------------------------------------------------------- steps
+
+
+def find_inputs(paths: Sequence[str | Path]) -> tuple[list[Path], list[FileProblem]]:
+    """Input files under ``paths`` and problems with paths; InputError when nothing is readable."""
+    return read_files(list(paths))
+
+
+def read_and_hash(path: str | Path, config: AuditConfig) -> tuple[FileRead, str]:
+    """Read one input file (never raises for bad content) and the SHA-256 of its bytes."""
+    read = read_input_file(Path(path), config)
+    try:
+        digest = file_sha256(path)
+    except OSError:
+        digest = ""
+    return read, digest
+
+
+def combine_reads(reads: list[FileRead], path_problems: list[FileProblem], config: AuditConfig) -> ReviewInput:
+    """Prepare the rows of all files together; InputError when no case passed validation."""
+    review = combine(reads, path_problems, config)
+    if review.prepared.rows_accepted == 0:
+        prep = review.prepared
+        raise InputError(
+            f"nothing usable: none of the {prep.rows_read} row(s) read passed validation "
+            f"({len(prep.quarantine)} problem(s)); run `sced-audit validate` on the same paths to see them"
+        )
+    return review
+
+
+def plan_run(review: ReviewInput, store: ResultsStore | None, config: AuditConfig,
+             version: str | None = None) -> ReusePlan:
+    """Hash every accepted case and split the cases into reused and to-compute."""
+    version = code_version() if version is None else version
+    obs = review.prepared.observations
+    hashes = case_hashes(obs, config.as_parameters(), version)
+    to_compute, reused = split_for_reuse(obs, hashes, store)
+    source = None
+    if reused:
+        source = reused["cases"].attrs.get("source_run")
+    return ReusePlan(code_version=version, hashes=hashes, to_compute=to_compute, reused=reused, source_run=source)
+
+
+def case_batches(observations: pd.DataFrame, batch_size: int = DEFAULT_BATCH_SIZE) -> list[pd.DataFrame]:
+    """Split observations into batches of at most ``batch_size`` whole cases (first-seen order)."""
+    if batch_size < 1:
+        raise ValueError(f"batch_size must be at least 1, got {batch_size}")
+    if observations.empty:
+        return []
+    codes, _ = pd.factorize(observations["case_key"], sort=False)
+    batch = codes // int(batch_size)
+    return [part.reset_index(drop=True) for _, part in observations.groupby(batch, sort=True)]
+
+
+def _resolve_diagnose(diagnose: Diagnose | None) -> Diagnose:
+    if diagnose is not None:
+        return diagnose
+    fn = _optional("audit.diagnose", "diagnose_cases")
+    if fn is None:
+        raise RuntimeError("audit.diagnose.diagnose_cases is not available in this installation")
+    return fn
+
+
+def diagnose_batch(observations: pd.DataFrame, alpha: float, diagnose: Diagnose | None = None) -> dict[str, pd.DataFrame]:
+    """Diagnostics tables of one batch of cases (``audit.diagnose.diagnose_cases`` by default)."""
+    fn = _resolve_diagnose(diagnose)
+    out = fn(observations, alpha=alpha)
+    return {str(name): df for name, df in out.items() if isinstance(df, pd.DataFrame)}
+
+
+def _ordered(df: pd.DataFrame, order: Mapping[str, int]) -> pd.DataFrame:
+    """Rows sorted by the case order (stable: rows of one case keep their order)."""
+    if df.empty or "case_key" not in df.columns:
+        return df.reset_index(drop=True)
+    pos = df["case_key"].map(order).fillna(len(order)).to_numpy(dtype=np.int64)
+    return df.iloc[np.argsort(pos, kind="stable")].reset_index(drop=True)
+
+
+def _concat(frames: list[pd.DataFrame]) -> pd.DataFrame:
+    frames = [f for f in frames if f is not None and len(f.columns)]
+    nonempty = [f for f in frames if len(f)]
+    if nonempty:
+        return nonempty[0].copy() if len(nonempty) == 1 else pd.concat(nonempty, ignore_index=True)
+    return frames[0].iloc[0:0].copy() if frames else pd.DataFrame()
+
+
+def assemble_tables(review: ReviewInput, plan: ReusePlan,
+                    batch_results: Sequence[Mapping[str, pd.DataFrame]]) -> dict[str, pd.DataFrame]:
+    """Every table of the run: input-side tables plus diagnostics (computed and reused) with hashes.
+
+    Computed ``cases`` rows get the accepted-case columns (n_points, quality flags ...) that the
+    diagnostics do not already hold; every diagnostics row gets its case's ``case_hash``.
+    Rows are ordered as the accepted cases.
+    """
+    prep = review.prepared
+    order = {k: i for i, k in enumerate(prep.cases["case_key"])} if len(prep.cases) else {}
+    names: list[str] = []
+    for part in [plan.reused, *batch_results]:
+        for name in part:
+            if name not in names:
+                names.append(name)
+    tables: dict[str, pd.DataFrame] = {
+        "observations": prep.observations.reset_index(drop=True),
+        "quarantine": prep.quarantine.reset_index(drop=True),
+        "adjustments": prep.adjustments.reset_index(drop=True),
+    }
+    for name in names:
+        computed = _concat([r[name] for r in batch_results if name in r])
+        if len(computed.columns) and "case_key" in computed.columns:
+            computed = computed.drop(columns=[HASH_KEY], errors="ignore")
+            if name == "cases" and len(prep.cases):
+                extra = [c for c in prep.cases.columns if c not in computed.columns]
+                if extra:
+                    computed = computed.merge(prep.cases[["case_key", *extra]], on="case_key", how="left")
+            computed[HASH_KEY] = computed["case_key"].map(plan.hashes).astype(object)
+        reused = plan.reused.get(name)
+        frames = [f for f in (reused, computed) if f is not None]
+        tables[name] = _ordered(_concat(frames), order)
+    return tables
+
+
+def summary_tables(tables: Mapping[str, pd.DataFrame], alpha: float = 0.05,
+                   accepted_cases: pd.DataFrame | None = None) -> dict[str, pd.DataFrame]:
+    """Summary tables from ``audit.summary.summarize`` when that module exists, else none.
+
+    ``summarize(cases, alpha=, quarantine=, accepted_cases=, observations=)`` gets the run's
+    tables (only the keywords it accepts); a summarize whose first parameter is not ``cases``
+    gets the dict of tables. A DataFrame result is stored as table ``summary``; a mapping as
+    ``summary_<name>`` tables.
+    """
+    summarize = _optional("audit.summary", "summarize")
+    if summarize is None or "cases" not in tables:
+        return {}
+    params = inspect.signature(summarize).parameters
+    if next(iter(params), None) == "cases":
+        offered = {"alpha": alpha, "quarantine": tables.get("quarantine"),
+                   "accepted_cases": accepted_cases, "observations": tables.get("observations")}
+        kwargs = {k: v for k, v in offered.items() if k in params and v is not None}
+        result = summarize(tables["cases"], **kwargs)
+    else:
+        result = summarize(dict(tables))
+    if result is None:
+        return {}
+    if isinstance(result, pd.DataFrame):
+        return {"summary": result}
+    return {(n if str(n).startswith("summary") else f"summary_{n}"): df
+            for n, df in result.items() if isinstance(df, pd.DataFrame)}
+
+
+def _flips(cases: pd.DataFrame | None) -> int | None:
+    if cases is None or "flip_any" not in cases.columns:
+        return None
+    values = pd.array(cases["flip_any"], dtype="boolean")
+    return int(values.fillna(False).sum())
+
+
+def write_run(store: ResultsStore, review: ReviewInput, plan: ReusePlan, tables: Mapping[str, pd.DataFrame],
+              config: AuditConfig, hashes_of_inputs: Mapping[str, str], lock_timeout: float = 60) -> RunSummary:
+    """Write every table (validated by the store) and commit the run with its counts."""
+    prep = review.prepared
+    cases = tables.get("cases")
+    n_cases = int(len(cases)) if cases is not None else 0
+    counts: dict[str, Any] = {
+        "cases_audited": n_cases,
+        "cases_reused": plan.n_reused,
+        "cases_computed": plan.n_to_compute,
+        "cases_quarantined": int(len(prep.cases_quarantined)),
+        "rows_read": int(prep.rows_read),
+        "rows_accepted": int(prep.rows_accepted),
+        "rows_quarantined": int(prep.rows_quarantined),
+        "files_read": len(review.files),
+        "input_problems": len(review.path_problems),
+    }
+    flips = _flips(cases)
+    if flips is not None:
+        counts["flips"] = flips
+    with store.begin_run(config.as_parameters(), plan.code_version, dict(hashes_of_inputs),
+                         lock_timeout=lock_timeout) as run:
+        for name, df in tables.items():
+            run.write_table(name, df)
+        run_id = run.commit(counts)
+    return RunSummary(
+        run_id=run_id,
+        store=store.path,
+        cases_audited=n_cases,
+        cases_reused=plan.n_reused,
+        cases_computed=plan.n_to_compute,
+        cases_quarantined=counts["cases_quarantined"],
+        rows_read=counts["rows_read"],
+        rows_accepted=counts["rows_accepted"],
+        rows_quarantined=counts["rows_quarantined"],
+        flips=flips,
+        input_problems=counts["input_problems"],
+        tables=tuple(tables),
+    )
+
+
+def write_report(store: ResultsStore, summary: RunSummary) -> RunSummary:
+    """Write the run's HTML report with ``audit.report.write_report`` when that module exists.
+
+    Called as ``write_report(store_path, run=run_id)`` (it returns the report's path); the
+    summary comes back with ``report`` set.
+    """
+    fn = _optional("audit.report", "write_report")
+    if fn is None:
+        return summary
+    params = inspect.signature(fn).parameters
+    path = fn(store.path, run=summary.run_id) if "run" in params else fn(store.path)
+    if path is None:
+        return summary
+    return dataclasses.replace(summary, report=Path(path))
+
+
+# ----------------------------------------------------------------------------------- whole run
+
+
+def run_audit(
+    paths: Sequence[str | Path],
+    store_path: str | Path,
+    config: AuditConfig | None = None,
+    progress: Progress | None = None,
+    batch_size: int = DEFAULT_BATCH_SIZE,
+    diagnose: Diagnose | None = None,
+    lock_timeout: float = 60,
+    with_summary: bool = True,
+    with_report: bool = True,
+) -> RunSummary:
+    """The whole audit, sequentially and without Prefect: intake, reuse, diagnose, store, summary, report.
+
+    progress: called as progress(stage, done, total) with stage "read" (files) or "diagnose"
+    (batches of cases). diagnose: the diagnostics function (default
+    ``audit.diagnose.diagnose_cases``), called once per batch. with_summary / with_report:
+    run the summary and report hooks (when those modules exist).
+    """
+    config = config or AuditConfig()
+    files, path_problems = find_inputs(paths)
+    reads = []
+    hashes: dict[str, str] = {}
+    for i, path in enumerate(files, start=1):
+        read, digest = read_and_hash(path, config)
+        reads.append(read)
+        hashes[str(read.path)] = digest
+        if progress:
+            progress("read", i, len(files))
+    review = combine_reads(reads, path_problems, config)
+    store = open_store(store_path)
+    plan = plan_run(review, store, config)
+    batches = case_batches(plan.to_compute, batch_size)
+    results = []
+    if progress:
+        progress("diagnose", 0, len(batches))
+    for i, batch in enumerate(batches, start=1):
+        results.append(diagnose_batch(batch, config.alpha, diagnose))
+        if progress:
+            progress("diagnose", i, len(batches))
+    tables = assemble_tables(review, plan, results)
+    if with_summary:
+        tables.update(summary_tables(tables, config.alpha, review.prepared.cases))
+    summary = write_run(store, review, plan, tables, config, hashes, lock_timeout)
+    return write_report(store, summary) if with_report else summary

@@ -1,0 +1,345 @@
+"""Prefect flow of a whole audit: each task is a thin call into ``audit.rerun`` (plain library).
+
+find files -> read + validate one task per file -> combine -> hash / reuse split ->
+diagnose one task per batch of cases (submitted to the task runner) -> summary -> write store
+-> report. The plain sequential path :func:`audit.rerun.run_audit` chains the same functions,
+so both write the same store content.
+
+Where tasks run: reading input files, planning, summary and writing the store run in the flow's
+own process (the input files and the store live there, also when diagnostics go to a remote Dask
+cluster); only the diagnose batches are submitted to the task runner (threads by default, or
+Prefect's DaskTaskRunner). No task persists results and no task hashes its inputs
+(``cache_policy=NONE``): inputs are DataFrames, and reuse is done by the store's content hashes.
+Retries: only the file IO tasks (find, read, write store) retry, and only on OSError.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import sys
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any
+
+from flows import settings as _settings
+
+if "prefect" not in sys.modules and not _settings._OURS:
+    _settings.configure()  # our defaults (own home, nothing sent out, quiet) before prefect loads
+
+from prefect import flow, task  # noqa: E402
+from prefect.cache_policies import NONE  # noqa: E402
+from prefect.futures import as_completed  # noqa: E402
+
+from audit import rerun  # noqa: E402
+from audit.config import AuditConfig, load_config  # noqa: E402
+from audit.ingest import FileProblem, FileRead  # noqa: E402
+from audit.intake import ReviewInput  # noqa: E402
+from audit.store import StoreError  # noqa: E402
+
+__all__ = [
+    "FLOW_NAME",
+    "audit_review",
+    "build_deployment",
+    "deployment_name",
+    "prefect_api",
+    "run_review",
+    "serve_deployment",
+    "task_runner_from_spec",
+]
+
+FLOW_NAME = "sced-audit-review"
+IO_RETRIES = 2
+IO_RETRY_DELAY_SECONDS = 1
+
+_progress: Callable[[str, int, int], None] | None = None
+
+_settings.strip_tracebacks()
+
+
+def _retry_on_io_error(task: Any, task_run: Any, state: Any) -> bool:
+    """Retry condition: an OSError (not a store lock or store error) is worth another try."""
+    try:
+        state.result()
+    except StoreError:
+        return False
+    except OSError:
+        return True
+    except BaseException:
+        return False
+    return False
+
+
+_common: dict[str, Any] = {"cache_policy": NONE, "persist_result": False}
+_io: dict[str, Any] = {
+    **_common,
+    "retries": IO_RETRIES,
+    "retry_delay_seconds": IO_RETRY_DELAY_SECONDS,
+    "retry_condition_fn": _retry_on_io_error,
+}
+
+
+@task(name="find-input-files", **_io)
+def find_files(inputs: list[str]) -> tuple[list[Path], list[FileProblem]]:
+    """Input files under the given paths (see audit.rerun.find_inputs)."""
+    return rerun.find_inputs(inputs)
+
+
+@task(name="read-input-file", task_run_name="read {path.name}", **_io)
+def read_file(path: Path, config: AuditConfig) -> tuple[FileRead, str]:
+    """Read and check one input file, with the SHA-256 of its bytes."""
+    return rerun.read_and_hash(path, config)
+
+
+@task(name="combine-and-validate", **_common)
+def combine_files(reads: list[FileRead], path_problems: list[FileProblem], config: AuditConfig) -> ReviewInput:
+    """Prepare the rows of all files together (validation, repairs, quarantine)."""
+    return rerun.combine_reads(reads, path_problems, config)
+
+
+@task(name="plan-reuse", **_common)
+def plan_reuse(review: ReviewInput, store: str, config: AuditConfig) -> rerun.ReusePlan:
+    """Hash every case and find the ones the latest committed run already diagnosed."""
+    return rerun.plan_run(review, rerun.open_store(store), config)
+
+
+@task(name="diagnose-batch", task_run_name="diagnose batch {batch_number}", **_common)
+def diagnose_batch(observations: Any, alpha: float, batch_number: int) -> dict[str, Any]:
+    """Diagnostics tables of one batch of cases."""
+    return rerun.diagnose_batch(observations, alpha)
+
+
+@task(name="summarize", **_common)
+def summarize(review: ReviewInput, plan: rerun.ReusePlan, results: list[dict[str, Any]],
+              alpha: float, with_summary: bool = True) -> dict[str, Any]:
+    """Every table of the run, with the review summary when audit.summary exists."""
+    tables = rerun.assemble_tables(review, plan, results)
+    if with_summary:
+        tables.update(rerun.summary_tables(tables, alpha, review.prepared.cases))
+    return tables
+
+
+@task(name="write-store", **_io)
+def write_store(store: str, review: ReviewInput, plan: rerun.ReusePlan, tables: dict[str, Any],
+                config: AuditConfig, input_hashes: dict[str, str]) -> rerun.RunSummary:
+    """Validate, stage and commit the run."""
+    return rerun.write_run(rerun.open_store(store), review, plan, tables, config, input_hashes)
+
+
+@task(name="write-report", **_common)
+def report(store: str, summary: rerun.RunSummary) -> rerun.RunSummary:
+    """The HTML report of the run when audit.report exists."""
+    return rerun.write_report(rerun.open_store(store), summary)
+
+
+def _report_progress(stage: str, done: int, total: int) -> None:
+    if _progress is not None:
+        _progress(stage, done, total)
+
+
+@flow(name=FLOW_NAME, persist_result=False, log_prints=False)
+def audit_review(
+    inputs: list[str],
+    store: str,
+    alpha: float | None = None,
+    config_file: str | None = None,
+    batch_size: int = rerun.DEFAULT_BATCH_SIZE,
+    with_summary: bool = True,
+    with_report: bool = True,
+) -> rerun.RunSummary:
+    """Audit every case under ``inputs`` into the results store ``store`` (reusing unchanged cases).
+
+    alpha overrides the config file's [analysis] alpha; config_file is a TOML file with column
+    and phase-label maps (see audit.config); with_summary / with_report run the review summary
+    and the HTML report (when those modules exist).
+    """
+    config = load_config(config_file).with_alpha(alpha)
+    if batch_size < 1:
+        raise ValueError(f"batch_size must be at least 1, got {batch_size}")
+    files, path_problems = find_files(list(inputs))
+    reads: list[FileRead] = []
+    hashes: dict[str, str] = {}
+    for i, path in enumerate(files, start=1):
+        read, digest = read_file(path, config)
+        reads.append(read)
+        hashes[str(read.path)] = digest
+        _report_progress("read", i, len(files))
+    review = combine_files(reads, path_problems, config)
+    plan = plan_reuse(review, store, config)
+    batches = rerun.case_batches(plan.to_compute, batch_size)
+    _report_progress("diagnose", 0, len(batches))
+    futures = [diagnose_batch.submit(batch, config.alpha, i) for i, batch in enumerate(batches, start=1)]
+    for done, _ in enumerate(as_completed(futures), start=1):
+        _report_progress("diagnose", done, len(batches))
+    results = [f.result() for f in futures]
+    tables = summarize(review, plan, results, config.alpha, with_summary)
+    summary = write_store(store, review, plan, tables, config, hashes)
+    return report(store, summary) if with_report else summary
+
+
+# ----------------------------------------------------------------------------------- running
+
+
+def task_runner_from_spec(spec: str | None) -> Any | None:
+    """None (Prefect's thread pool) for None/"threads"; a DaskTaskRunner for "dask" or "dask=ADDRESS".
+
+    Without an address a local Dask cluster is started (one single-threaded worker process per
+    core, no dashboard); with one, the runner connects to that scheduler.
+    """
+    if spec is None or spec in ("threads", "default"):
+        return None
+    kind, _, address = spec.partition("=")
+    if kind != "dask":
+        raise ValueError(f"unknown task runner {spec!r}; use 'dask' or 'dask=ADDRESS' (e.g. dask=tcp://host:8786)")
+    try:
+        from prefect_dask import DaskTaskRunner
+    except ModuleNotFoundError:
+        raise ValueError(
+            "the Dask task runner needs the optional extra: pip install 'sced-audit[dask]' "
+            "(prefect-dask and dask[distributed])"
+        ) from None
+    if address:
+        return DaskTaskRunner(address=address)
+    workers = max(1, min(os.cpu_count() or 1, 8))
+    return DaskTaskRunner(cluster_kwargs={
+        "n_workers": workers, "threads_per_worker": 1, "processes": True,
+        # loopback only; the dashboard on a free port (None would still bind the default :8787)
+        "host": "127.0.0.1", "dashboard_address": "127.0.0.1:0",
+    })
+
+
+@contextmanager
+def prefect_api() -> Iterator[str]:
+    """The API for this process's flow runs: PREFECT_API_URL, else the embedded local server.
+
+    The embedded server is started once per process (stopped at exit) and its URL is put into
+    the settings and the environment for the duration, so task runners in other processes
+    (Dask worker processes) report to this server instead of starting their own on the same
+    SQLite file.
+    """
+    from prefect.settings import PREFECT_API_URL, temporary_settings
+
+    url = PREFECT_API_URL.value()
+    if url:
+        yield url
+        return
+    from prefect.server.api.server import SubprocessASGIServer
+
+    server = SubprocessASGIServer()  # one per process (Prefect keeps it; stopped at exit)
+    server.start()
+    previous = os.environ.get("PREFECT_API_URL")
+    os.environ["PREFECT_API_URL"] = server.api_url
+    try:
+        with temporary_settings(updates={PREFECT_API_URL: server.api_url}):
+            yield server.api_url
+    finally:
+        if previous is None:
+            os.environ.pop("PREFECT_API_URL", None)
+        else:
+            os.environ["PREFECT_API_URL"] = previous
+
+
+def run_review(
+    inputs: Sequence[str | Path],
+    store: str | Path,
+    *,
+    alpha: float | None = None,
+    config_file: str | Path | None = None,
+    batch_size: int = rerun.DEFAULT_BATCH_SIZE,
+    task_runner: Any | None = None,
+    progress: Callable[[str, int, int], None] | None = None,
+    with_summary: bool = True,
+    with_report: bool = True,
+) -> rerun.RunSummary:
+    """Run :func:`audit_review` in this process (embedded server unless PREFECT_API_URL is set).
+
+    task_runner: None, a Prefect task runner, or a spec for :func:`task_runner_from_spec`.
+    progress: called as progress(stage, done, total) from the flow ("read" files, "diagnose" batches).
+    """
+    global _progress
+    runner = task_runner_from_spec(task_runner) if isinstance(task_runner, str) else task_runner
+    fn = audit_review if runner is None else audit_review.with_options(task_runner=runner)
+    previous = _progress
+    _progress = progress
+    try:
+        with prefect_api():
+            _settings.strip_tracebacks()
+            return fn(
+                inputs=[str(p) for p in inputs],
+                store=str(store),
+                alpha=alpha,
+                config_file=None if config_file is None else str(config_file),
+                batch_size=int(batch_size),
+                with_summary=with_summary,
+                with_report=with_report,
+            )
+    finally:
+        _progress = previous
+
+
+# ----------------------------------------------------------------------------------- schedules
+
+
+def deployment_name(store: str | Path) -> str:
+    """A stable deployment name for a store: its folder name plus a short digest of its full path."""
+    path = Path(store).expanduser().resolve()
+    digest = hashlib.sha1(str(path).encode("utf-8")).hexdigest()[:8]
+    base = "".join(ch if ch.isalnum() or ch in "-_" else "-" for ch in path.name) or "store"
+    return f"{base}-{digest}"
+
+
+def build_deployment(
+    inputs: Sequence[str | Path],
+    store: str | Path,
+    cron: str,
+    *,
+    alpha: float | None = None,
+    config_file: str | Path | None = None,
+    batch_size: int = rerun.DEFAULT_BATCH_SIZE,
+    name: str | None = None,
+    timezone: str | None = None,
+) -> Any:
+    """A deployment of :func:`audit_review` with a cron schedule (paths made absolute).
+
+    The entrypoint is the module path ``flows.review.audit_review``, so the runner finds the
+    flow whatever its working folder. An invalid cron expression raises ValueError.
+    """
+    from prefect.client.schemas.schedules import CronSchedule
+    from prefect.deployments.runner import EntrypointType
+
+    try:
+        schedule = CronSchedule(cron=cron, timezone=timezone) if timezone else CronSchedule(cron=cron)
+    except ValueError as exc:  # pydantic's ValidationError is a ValueError
+        raise ValueError(f"invalid cron expression {cron!r}: {_first_error(exc)}") from None
+    parameters = {
+        "inputs": [str(Path(p).expanduser().resolve()) for p in inputs],
+        "store": str(Path(store).expanduser().resolve()),
+        "alpha": alpha,
+        "config_file": None if config_file is None else str(Path(config_file).expanduser().resolve()),
+        "batch_size": int(batch_size),
+    }
+    return audit_review.to_deployment(
+        name=name or deployment_name(store),
+        schedules=[schedule],
+        parameters=parameters,
+        description=f"Scheduled sced-audit rerun into {parameters['store']}",
+        entrypoint_type=EntrypointType.MODULE_PATH,
+    )
+
+
+def _first_error(exc: Exception) -> str:
+    errors = getattr(exc, "errors", None)
+    if callable(errors):
+        try:
+            return str(errors()[0].get("msg", exc))
+        except Exception:  # pragma: no cover - defensive
+            pass
+    return str(exc).splitlines()[0]
+
+
+def serve_deployment(deployment: Any) -> None:
+    """Serve the deployment (blocks until interrupted); needs a real Prefect server."""
+    from prefect import serve
+
+    serve(deployment, print_starting_message=False)
