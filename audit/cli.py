@@ -383,10 +383,32 @@ def cmd_demo(args) -> int:
     )
     summary = _run_pipeline(args, [demo.data_folder], folder / "store", AuditConfig(), Progress())
     print(summary.closing_line())
+    try:
+        from audit.summary import load_summary
+
+        overall = load_summary(summary.store).get("summary_overall")
+        if overall is not None and len(overall):
+            print(f"\n{overall['answer'].iloc[0]}\n")
+    except Exception as exc:  # the summary is a bonus here; the run itself is committed
+        print(f"(summary not shown: {exc})")
     print(f"Read the results with pandas: pd.read_parquet('{summary.store / 'cases'}'), "
-          f"or `sced-audit runs --store {summary.store}`.")
+          f"or `sced-audit summary --store {summary.store} --by study`.")
     print(f"\n{CAUTION}")
     return EXIT_OK
+
+
+# ------------------------------------------------------------------ summary and report
+
+def cmd_summary(args) -> int:
+    from audit.summary import cmd_summary as run
+
+    return run(args)
+
+
+def cmd_report(args) -> int:
+    from audit.report import cmd_report as run
+
+    return run(args)
 
 
 # ------------------------------------------------------------------ entry point
@@ -439,6 +461,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print JSON records instead of a table")
     _add_common(p, prefect=False)
     p.set_defaults(func=cmd_runs)
+
+    p = sub.add_parser("summary", help="how often serial dependence would change the review's conclusions")
+    p.add_argument("--store", required=True, metavar="DIR", help="results store")
+    p.add_argument("--run", default="latest", metavar="ID", help="run id (default: latest)")
+    p.add_argument("--by", choices=["study", "design", "scale"],
+                   help="table to show: screening by study, or pooled AR(1) and flips by design / outcome scale")
+    p.add_argument("--json", action="store_true", help="print every summary table as JSON")
+    p.set_defaults(func=cmd_summary)
+
+    p = sub.add_parser("report", help="write the self-contained HTML report of a run")
+    p.add_argument("--store", required=True, metavar="DIR", help="results store")
+    p.add_argument("--out", metavar="FILE", help="output file (default: <store>/sced-audit-report-<run>.html)")
+    p.add_argument("--run", default="latest", metavar="ID", help="run id (default: latest)")
+    p.set_defaults(func=cmd_report)
 
     p = sub.add_parser("schedule", help="serve scheduled reruns (cron) against a Prefect server")
     p.add_argument("paths", nargs="+", metavar="PATH", help="files or folders (searched recursively)")

@@ -288,11 +288,15 @@ def _validators() -> dict[str, Callable[[pd.DataFrame], pd.DataFrame]]:
             models.update(declared)
         else:
             for table, cls_name in (("cases", "CaseResults"), ("phases", "PhaseResults"),
-                                    ("contrasts", "ContrastResults"), ("summary*", "SummaryResults")):
+                                    ("contrasts", "ContrastResults")):
                 model = getattr(results, cls_name, None)
                 if model is not None:
                     models[table] = model
-    return {name: (lambda df, m=model: m.validate(df, lazy=True)) for name, model in models.items()}
+    validators = {name: (lambda df, m=model: m.validate(df, lazy=True)) for name, model in models.items()}
+    from schemas.summary import summary_validators
+
+    validators.update(summary_validators())
+    return validators
 
 
 def open_store(path: str | Path) -> ResultsStore:

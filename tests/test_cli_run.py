@@ -8,6 +8,7 @@ runs the real command with Prefect's embedded server and checks its output is cl
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import subprocess
@@ -62,6 +63,16 @@ def test_run_closing_line_and_exit_1_with_quarantine(tmp_path, capsys):
     assert main(["runs", "--store", str(store)]) == 0
     out = capsys.readouterr().out
     assert m[7] in out and m2[7] in out and "2 committed run(s)" in out
+
+    assert main(["summary", "--store", str(store), "--by", "study"]) == 0
+    out = capsys.readouterr().out
+    assert "pooled AR(1) coefficient" in out and "Caution" in out
+    assert main(["summary", "--store", str(store), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["overall"][0]["n_cases"] == n_ok
+    report = tmp_path / "r.html"
+    assert main(["report", "--store", str(store), "--out", str(report)]) == 0
+    assert report.read_text(encoding="utf-8").lstrip().lower().startswith("<!doctype html")
+    assert main(["summary", "--store", str(tmp_path / "empty")]) == 2
 
 
 def test_run_clean_input_exits_0(tmp_path, capsys):
