@@ -188,13 +188,18 @@ def _run_pipeline(args, paths, store, config: AuditConfig, progress: Progress) -
         raise UsageError(f"--batch-size must be at least 1, got {batch_size}")
     runner_spec = getattr(args, "task_runner", None)
     with_report = not getattr(args, "no_report", False)
+    lock_timeout = getattr(args, "lock_timeout", None)
+    lock_timeout = 60.0 if lock_timeout is None else lock_timeout
+    if lock_timeout < 0:
+        raise UsageError(f"--lock-timeout must not be negative, got {lock_timeout}")
     if Path(store).exists() and not Path(store).is_dir():
         raise UsageError(f"--store {store} is a file; give a folder for the results store")
     try:
         if getattr(args, "no_prefect", False):
             if runner_spec:
                 raise UsageError("--task-runner needs Prefect; leave out --no-prefect")
-            return run_audit(paths, store, config, progress=progress, batch_size=batch_size, with_report=with_report)
+            return run_audit(paths, store, config, progress=progress, batch_size=batch_size, with_report=with_report,
+                             lock_timeout=lock_timeout)
         # Prefect lives in flows/ (audit/ stays a plain library): imported only here.
         from flows.settings import configure
 
@@ -207,7 +212,8 @@ def _run_pipeline(args, paths, store, config: AuditConfig, progress: Progress) -
             raise UsageError(str(exc)) from None
         # the flow loads the config file itself (its parameters stay plain data for deployments)
         return run_review(paths, store, alpha=getattr(args, "alpha", None), config_file=getattr(args, "config", None),
-                          batch_size=batch_size, task_runner=runner, progress=progress, with_report=with_report)
+                          batch_size=batch_size, task_runner=runner, progress=progress, with_report=with_report,
+                          lock_timeout=lock_timeout)
     except InputError as exc:
         raise UsageError(str(exc)) from None
     except StoreError as exc:
@@ -417,6 +423,8 @@ def _add_analysis_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--alpha", type=float, metavar="A", help="significance level (default 0.05 or the config's)")
     p.add_argument("--config", metavar="FILE", help="TOML file with column and phase-label maps")
     p.add_argument("--batch-size", type=int, metavar="N", help="cases per diagnose task (default 100)")
+    p.add_argument("--lock-timeout", type=float, metavar="SECONDS",
+                   help="how long to wait for another run writing the same store (default 60)")
 
 
 def _add_common(p: argparse.ArgumentParser, prefect: bool = True) -> None:

@@ -122,9 +122,9 @@ def summarize(review: ReviewInput, plan: rerun.ReusePlan, results: list[dict[str
 
 @task(name="write-store", **_io)
 def write_store(store: str, review: ReviewInput, plan: rerun.ReusePlan, tables: dict[str, Any],
-                config: AuditConfig, input_hashes: dict[str, str]) -> rerun.RunSummary:
+                config: AuditConfig, input_hashes: dict[str, str], lock_timeout: float = 60.0) -> rerun.RunSummary:
     """Validate, stage and commit the run."""
-    return rerun.write_run(rerun.open_store(store), review, plan, tables, config, input_hashes)
+    return rerun.write_run(rerun.open_store(store), review, plan, tables, config, input_hashes, lock_timeout)
 
 
 @task(name="write-report", **_common)
@@ -147,6 +147,7 @@ def audit_review(
     batch_size: int = rerun.DEFAULT_BATCH_SIZE,
     with_summary: bool = True,
     with_report: bool = True,
+    lock_timeout: float = 60.0,
 ) -> rerun.RunSummary:
     """Audit every case under ``inputs`` into the results store ``store`` (reusing unchanged cases).
 
@@ -174,7 +175,7 @@ def audit_review(
         _report_progress("diagnose", done, len(batches))
     results = [f.result() for f in futures]
     tables = summarize(review, plan, results, config.alpha, with_summary)
-    summary = write_store(store, review, plan, tables, config, hashes)
+    summary = write_store(store, review, plan, tables, config, hashes, lock_timeout)
     return report(store, summary) if with_report else summary
 
 
@@ -251,6 +252,7 @@ def run_review(
     progress: Callable[[str, int, int], None] | None = None,
     with_summary: bool = True,
     with_report: bool = True,
+    lock_timeout: float = 60.0,
 ) -> rerun.RunSummary:
     """Run :func:`audit_review` in this process (embedded server unless PREFECT_API_URL is set).
 
@@ -273,6 +275,7 @@ def run_review(
                 batch_size=int(batch_size),
                 with_summary=with_summary,
                 with_report=with_report,
+                lock_timeout=float(lock_timeout),
             )
     finally:
         _progress = previous
