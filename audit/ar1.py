@@ -29,9 +29,12 @@ from audit import reasons as R
 from audit.regression import (
     _as_batch,
     _as_design,
+    binary_exponents,
     design_reason,
     prais_winsten_transform,
+    scale_rows,
     series_reasons,
+    unscale,
 )
 
 __all__ = [
@@ -75,7 +78,11 @@ def ar1_correlation_matrix(n: int, rho: float) -> np.ndarray:
 
 
 def _fit_reasons(Y: np.ndarray, X: np.ndarray) -> tuple[str, np.ndarray, np.ndarray]:
-    """Design reason, per-row reasons and OLS residuals (NaN rows zero-filled)."""
+    """Design reason, per-row reasons and OLS residuals (NaN rows zero-filled).
+
+    Y must already be scaled to moderate magnitudes (``scale_rows``); rho does not depend on
+    the scale of y, the log-likelihood shifts by -(n-k) e log 2 (REML) or -n e log 2 (ML).
+    """
     n, k = X.shape
     m = Y.shape[0]
     xreason = design_reason(X)
@@ -204,7 +211,8 @@ def ar1_batch(Y, X, method: str = "REML") -> pd.DataFrame:
     loglik = np.full(m, np.nan)
     converged = np.zeros(m, dtype=bool)
     at_bound = np.zeros(m, dtype=bool)
-    xreason, reason, E = _fit_reasons(Y, X)
+    ex = binary_exponents(Y)
+    xreason, reason, E = _fit_reasons(scale_rows(Y, ex), X)
     good = reason == R.OK
     if np.any(good):
         mom = _Moments(E[good], X)
@@ -223,7 +231,7 @@ def ar1_batch(Y, X, method: str = "REML") -> pd.DataFrame:
         worse = ~(f_est <= f_best + 1e-12 * np.abs(f_best))
         conv = ok & ~worse & np.isfinite(f_est)
         rho[good] = est
-        loglik[good] = -0.5 * f_est
+        loglik[good] = -0.5 * f_est - _loglik_shift(method, n, k) * ex[good]
         converged[good] = conv
         at_bound[good] = bound
         bad_num = ~np.isfinite(f_est)
@@ -313,6 +321,8 @@ def _ar1_single(y, X, method: str) -> AR1Fit:
     if y.shape[0] != n:
         raise ValueError(f"y has {y.shape[0]} points but X has {n} rows")
     nan = float("nan")
+    ex = binary_exponents(y)
+    y = scale_rows(y, ex)  # exact; rho is scale-free, the log-likelihood is shifted back below
     _, reason, _ = _fit_reasons(y[None, :], X)
     if reason[0]:
         return AR1Fit(nan, method, nan, False, False, str(reason[0]))
@@ -336,7 +346,13 @@ def _ar1_single(y, X, method: str) -> AR1Fit:
     if not np.isfinite(f_est):
         return AR1Fit(nan, method, nan, False, False, R.NUMERICAL_FAILURE)
     worse = not (f_est <= f_best[0] + 1e-12 * abs(f_best[0]))
-    return AR1Fit(float(rho), method, -0.5 * f_est, ok and not worse, bool(bound[0]), R.OK)
+    loglik = -0.5 * f_est - _loglik_shift(method, n, k) * ex
+    return AR1Fit(float(rho), method, float(loglik), ok and not worse, bool(bound[0]), R.OK)
+
+
+def _loglik_shift(method: str, n: int, k: int) -> float:
+    """Change of the log-likelihood per factor 2 in the scale of y: (n-k) log 2 or n log 2."""
+    return (n - k if method == "REML" else n) * np.log(2.0)
 
 
 def ar1_reml(y, X) -> AR1Fit:
@@ -371,6 +387,8 @@ def gls_ar1_table(y, X, rho: float, names=None) -> pd.DataFrame:
         raise ValueError(f"y has {y.shape[0]} points but X has {n} rows")
     names = list(names) if names is not None else [f"x{j}" for j in range(k)]
     rho = float(rho)
+    ex = binary_exponents(y)
+    y = scale_rows(y, ex)  # exact; coef and std_error are scaled back below
     reason = design_reason(X)
     if reason == R.OK:
         if not np.isfinite(rho):
@@ -393,5 +411,9 @@ def gls_ar1_table(y, X, rho: float, names=None) -> pd.DataFrame:
     se = np.sqrt(s2 * np.diag(np.linalg.inv(Xs.T @ Xs)))
     t = coef / se
     p = 2.0 * stats.t.sf(np.abs(t), n - k)
+    coef, se = unscale(coef, ex), unscale(se, ex)
+    if not (np.all(np.isfinite(coef)) and np.all(np.isfinite(se))):
+        return pd.DataFrame({"coef": nan, "std_error": nan, "t": nan, "p_value": nan,
+                             "df": float(n - k), "reason": R.NUMERICAL_FAILURE}, index=names)
     return pd.DataFrame({"coef": coef, "std_error": se, "t": t, "p_value": p,
                          "df": float(n - k), "reason": R.OK}, index=names)

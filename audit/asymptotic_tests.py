@@ -22,7 +22,7 @@ import pandas as pd
 from scipy import stats
 
 from audit import reasons as R
-from audit.regression import _as_batch, _as_design, design_reason, series_reasons
+from audit.regression import _as_batch, _as_design, binary_exponents, design_reason, scale_rows, series_reasons
 
 __all__ = [
     "BreuschGodfrey",
@@ -109,6 +109,7 @@ def breusch_godfrey_batch(E, X, y=None) -> pd.DataFrame:
         return _bg_frame(nanm, nanm, nanm, nanm, df_denom, reason)
     finite = np.all(np.isfinite(E), axis=1)
     Ef = np.where(np.isfinite(E), E, 0.0)
+    Ef = scale_rows(Ef, binary_exponents(Ef))  # exact; LM and F are scale-free
     lag = np.zeros_like(Ef)
     lag[:, 1:] = Ef[:, :-1]
     Q = np.linalg.qr(Xa)[0]
@@ -174,6 +175,7 @@ def breusch_godfrey(residuals, X, y=None) -> BreuschGodfrey:
     if reason == R.OK:
         reason = str(_data_reasons(e[None, :], None if y is None else np.ravel(y))[0])
     if reason == R.OK:
+        e = scale_rows(e, binary_exponents(e))  # exact; LM and F are scale-free
         scale = float(e @ e)
         sst = float(np.sum((e - e.mean()) ** 2))
         if not (scale > 0 and sst > 1e-20 * scale):
@@ -206,6 +208,7 @@ def ljung_box_batch(E, lags: int | None = None, y=None) -> pd.DataFrame:
     reason = np.full(m, R.OK, dtype=object)
     finite = np.all(np.isfinite(E), axis=1)
     Ef = np.where(np.isfinite(E), E, 0.0)
+    Ef = scale_rows(Ef, binary_exponents(Ef))  # exact; Q is scale-free
     D = Ef - Ef.mean(axis=1, keepdims=True)
     den = np.sum(D**2, axis=1)
     scale = np.sum(Ef**2, axis=1)
@@ -251,6 +254,7 @@ def ljung_box(residuals, lags: int | None = None, y=None) -> LjungBox:
     code = str(_data_reasons(e[None, :], None if y is None else np.ravel(y))[0])
     if code:
         return LjungBox(nan, h, nan, h, reason=code)
+    e = scale_rows(e, binary_exponents(e))  # exact; Q is scale-free
     d = e - e.mean()
     den = float(d @ d)
     if not (float(e @ e) > 0 and den > 1e-20 * float(e @ e)):

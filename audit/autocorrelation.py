@@ -23,7 +23,7 @@ import pandas as pd
 from scipy import stats
 
 from audit import reasons as R
-from audit.regression import _as_batch, _as_design, design_reason, series_reasons
+from audit.regression import _as_batch, _as_design, binary_exponents, design_reason, scale_rows, series_reasons
 
 __all__ = [
     "ResidualLag1",
@@ -131,7 +131,7 @@ def residual_lag1_batch(E, X, y=None) -> pd.DataFrame:
                              "method": RESIDUAL_METHOD, "reason": reason})
     mean, var = residual_lag1_null_moments(X)
     Ef = np.where(np.isfinite(E), E, 0.0)
-    num, den = _r1_rows(Ef)
+    num, den = _r1_rows(scale_rows(Ef, binary_exponents(Ef)))  # exact scaling; r1 is scale-free
     reason = _residual_reasons(E, den, y)
     ok = reason == R.OK
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -174,7 +174,9 @@ def residual_lag1(residuals, X, y=None) -> ResidualLag1:
     if not np.all(np.isfinite(e)) or (y is not None and not np.all(np.isfinite(y))):
         return ResidualLag1(nan, nan, nan, nan, nan, nan, RESIDUAL_METHOD, R.NON_FINITE_INPUT)
     mean, var = residual_lag1_null_moments(X)
-    den = float(e @ e)
+    ex = binary_exponents(e)
+    es = scale_rows(e, ex)  # exact scaling (values near the float limits); r1 is scale-free
+    den = float(es @ es)
     if not den > 0:
         return ResidualLag1(nan, mean, var, nan, nan, nan, RESIDUAL_METHOD,
                             R.ZERO_RESIDUAL_VARIANCE)
@@ -185,7 +187,7 @@ def residual_lag1(residuals, X, y=None) -> ResidualLag1:
         code = str(series_reasons(yv[None, :], e[None, :])[0])
         if code:
             return ResidualLag1(nan, mean, var, nan, nan, nan, RESIDUAL_METHOD, code)
-    r1 = float(e[1:] @ e[:-1]) / den
+    r1 = float(es[1:] @ es[:-1]) / den
     if not var > 0:
         return ResidualLag1(r1, mean, var, r1 - mean, nan, nan, RESIDUAL_METHOD, R.ZERO_VARIANCE)
     z = (r1 - mean) / np.sqrt(var)
@@ -217,6 +219,7 @@ def phase_lag1(y) -> PhaseLag1:
         return PhaseLag1(n, nan, nan, nan, nan, nan, nan, PHASE_METHOD, R.NON_FINITE_INPUT)
     if n < 3:
         return PhaseLag1(n, nan, nan, nan, nan, nan, nan, PHASE_METHOD, R.TOO_FEW_POINTS)
+    y = scale_rows(y, binary_exponents(y))  # exact; r1 is scale-free
     d = y - y.mean()
     den = float(d @ d)
     if np.ptp(y) <= 1e-12 * np.max(np.abs(y)) or not den > 0:
@@ -236,6 +239,7 @@ def phase_lag1_batch(Y) -> pd.DataFrame:
     reason = np.full(m, R.OK, dtype=object)
     finite = np.all(np.isfinite(Y), axis=1)
     Yf = np.where(np.isfinite(Y), Y, 0.0)
+    Yf = scale_rows(Yf, binary_exponents(Yf))  # exact; r1 is scale-free
     D = Yf - Yf.mean(axis=1, keepdims=True)
     num, den = _r1_rows(D)
     const = (np.ptp(Yf, axis=1) <= 1e-12 * np.max(np.abs(Yf), axis=1)) | ~(den > 0)

@@ -169,6 +169,9 @@ def parse_config(raw: Mapping[str, Any], source: str = "inline") -> AuditConfig:
         )
     except (TypeError, ValueError):
         raise ConfigError(f"{source}: [limits] values must be whole numbers") from None
+    for name in ("max_file_bytes", "max_points_per_case"):
+        if getattr(limits, name) < 1:
+            raise ConfigError(f"{source}: [limits] {name} must be at least 1, got {getattr(limits, name)}")
 
     alpha = raw.get("analysis", {}).get("alpha", 0.05)
     _check_alpha(alpha, f"{source}: [analysis] alpha")

@@ -27,10 +27,17 @@ from audit.ar1 import ar1_batch
 from audit.asymptotic_tests import breusch_godfrey_batch, ljung_box_batch
 from audit.autocorrelation import phase_lag1_batch, residual_lag1_batch
 from audit.design import CaseDesign, case_design
-from audit.effect_sizes import case_effect_sizes
-from audit.trend import baseline_trends
+from audit.batch_effects import baseline_trends_batch, case_effects_batch
+from audit.stacked import diagnose_series
 from audit.durbin_watson import critical_bounds, dw_power, dw_pvalues_batch, dw_statistic
-from audit.regression import gls_contrast_batch, hac_contrast_batch, ols_contrast_batch
+from audit.regression import (
+    binary_exponents,
+    gls_contrast_batch,
+    hac_contrast_batch,
+    ols_contrast_batch,
+    scale_rows,
+    unscale,
+)
 
 DEFAULT_POWER_RHO = 0.3
 CASE_ID_COLUMNS = ["case_key", "study", "case", "series", "design", "outcome_scale", "desired_direction"]
@@ -72,6 +79,11 @@ def diagnose_group(Y: np.ndarray, design: CaseDesign, alpha: float, supplied_rho
     X, c = design.X, design.contrast
     m, n = Y.shape
     k = X.shape[1]
+    # Each series is scaled by a power of two (exact) so that values near the float limits cannot
+    # overflow; every statistic below is scale-free except the effect estimates and standard
+    # errors, which are scaled back at the end.
+    ex = binary_exponents(Y)
+    Y = scale_rows(Y, ex)
     out: dict[str, np.ndarray] = {}
     out["model"] = np.full(m, design.model, dtype=object)
     out["n_obs"] = np.full(m, n)
@@ -173,8 +185,18 @@ def diagnose_group(Y: np.ndarray, design: CaseDesign, alpha: float, supplied_rho
         for col in ("dw_p_positive", "dw_p_negative"):
             out[col] = np.where(dead, np.nan, out[col])
         out["dw_zone"] = np.where(dead, "unknown", out["dw_zone"])
-    out["reason"] = np.array([R.join(a, b, c_) for a, b, c_ in zip(
-        out["effect_ols_reason"], out["ar1_reml_reason"], r1["reason"].to_numpy())], dtype=object)
+    overflow = np.zeros(m, dtype=bool)
+    for col in [c_ for c_ in out if c_.startswith("effect_") and c_.endswith(("_estimate", "_std_error"))]:
+        values = unscale(out[col], ex)
+        bad = np.isfinite(out[col]) & ~np.isfinite(values)  # beyond the float range in the data's units
+        out[col] = np.where(bad, np.nan, values)
+        overflow |= bad
+        reason_col = col.rsplit("_estimate", 1)[0].rsplit("_std_error", 1)[0] + "_reason"
+        if bad.any() and reason_col in out:
+            out[reason_col] = np.array([R.join(r, R.NUMERICAL_FAILURE) if b_ else r
+                                        for r, b_ in zip(out[reason_col], bad)], dtype=object)
+    out["reason"] = np.array([R.join(a, b, c_, R.NUMERICAL_FAILURE if o else R.OK) for a, b, c_, o in zip(
+        out["effect_ols_reason"], out["ar1_reml_reason"], r1["reason"].to_numpy(), overflow)], dtype=object)
     return pd.DataFrame(out)
 
 
@@ -219,20 +241,7 @@ def diagnose_cases(observations: pd.DataFrame, alpha: float = 0.05, supplied_rho
     """
     obs = observations.sort_values(["case_key", "session"], kind="stable").reset_index(drop=True)
     pieces = _split_cases(obs)
-    groups: dict[bytes, list[int]] = defaultdict(list)
-    designs: dict[bytes, CaseDesign] = {}
-    case_rows = []
-    sess = obs["session"].to_numpy(dtype=float)
-    yv = obs["outcome"].to_numpy(dtype=float)
-    ph = obs["phase_index"].to_numpy()
-    cond = obs["condition"].to_numpy().astype(str)
-    label = obs["phase"].to_numpy().astype(str)
-    design_col = obs["design"].to_numpy().astype(str)
-    for i, (key, sl) in enumerate(pieces):
-        des = case_design(sess[sl], ph[sl], cond[sl], design_col[sl.start], label[sl])
-        groups[des.signature].append(i)
-        designs[des.signature] = des
-        case_rows.append(sl.start)
+    case_rows = np.asarray([sl.start for _, sl in pieces], dtype=np.int64)
     ident = obs.iloc[case_rows][CASE_ID_COLUMNS].reset_index(drop=True)
     if isinstance(supplied_rho, pd.Series):
         rho_per_case = ident["case_key"].map(supplied_rho).to_numpy(dtype=float)
@@ -240,47 +249,40 @@ def diagnose_cases(observations: pd.DataFrame, alpha: float = 0.05, supplied_rho
         rho_per_case = np.full(len(pieces), float(supplied_rho))
     else:
         rho_per_case = None
+    if not pieces:
+        return _empty_tables(obs)
 
-    parts = []
-    done = 0
-    for sig, idx in groups.items():
-        des = designs[sig]
-        Y = np.vstack([yv[pieces[i][1]] for i in idx])
-        frame = diagnose_group(Y, des, alpha, None if rho_per_case is None else rho_per_case[idx], power_rho)
-        frame.index = idx
-        parts.append(frame)
-        done += len(idx)
-        if progress:
-            progress(done, len(pieces))
-    stats_frame = pd.concat(parts).sort_index() if parts else pd.DataFrame()
+    # regression-based diagnostics: cases stacked by (n, k), batched linear algebra (audit.stacked)
+    stats_frame = diagnose_series(
+        obs["session"].to_numpy(dtype=float), obs["outcome"].to_numpy(dtype=float), obs["phase_index"].to_numpy(),
+        obs["condition"].to_numpy().astype(str), obs["design"].to_numpy().astype(str),
+        obs["phase"].to_numpy().astype(str), case_rows, alpha, rho_per_case, power_rho, progress)
     cases = pd.concat([ident, stats_frame.reset_index(drop=True)], axis=1)
-    rho_for_effects = cases["ar1_reml_rho"].to_numpy(dtype=float) if len(cases) else np.array([])
-    effect_rows, trend_rows, contrast_parts, phase_trend_parts = [], [], [], []
-    for i, (key, sl) in enumerate(pieces):
-        row = ident.iloc[i]
-        rho_i = rho_for_effects[i]
-        per_contrast, case_es = case_effect_sizes(
-            sess[sl], yv[sl], ph[sl], cond[sl], design_col[sl.start], row["desired_direction"], row["outcome_scale"],
-            rho=float(rho_i) if np.isfinite(rho_i) else None, alpha=alpha)
-        effect_rows.append(case_es)
-        per_contrast.insert(0, "case_key", key)
-        contrast_parts.append(per_contrast)
-        trends = baseline_trends(sess[sl], yv[sl], ph[sl], cond[sl], row["desired_direction"], alpha=alpha)
-        overall = trends[trends["scope"] == "all_baseline"]
-        trend_rows.append(overall.iloc[0].to_dict() if len(overall) else {})
-        per_phase = trends[trends["scope"] == "phase"].copy()
-        per_phase.insert(0, "case_key", key)
-        phase_trend_parts.append(per_phase)
-    cases = pd.concat([cases, _effect_columns(effect_rows), _trend_columns(trend_rows)], axis=1)
+
+    # effect sizes and baseline trends, vectorised over cases (audit.batch_effects)
+    rho_for_effects = cases["ar1_reml_rho"].to_numpy(dtype=float)
+    case_es, contrasts = case_effects_batch(obs, rho_for_effects, alpha)
+    trends = baseline_trends_batch(obs, alpha)
+    overall = trends[trends["scope"] == "all_baseline"].drop_duplicates("case_key").set_index("case_key")
+    trend_rows = overall.reindex(ident["case_key"]).reset_index(drop=True)
+    cases = pd.concat([cases, _effect_columns(case_es), _trend_columns(trend_rows)], axis=1)
+
     phases = phase_table(obs)
-    if phase_trend_parts:
-        pt = pd.concat(phase_trend_parts, ignore_index=True)
-        keep = ["case_key", "phase_index"] + [c for c in TREND_COLUMNS if c in pt]
-        pt = pt[keep].rename(columns={c: f"trend_{c}" for c in TREND_COLUMNS})
-        pt["phase_index"] = pt["phase_index"].astype("int64")
+    per_phase = trends[trends["scope"] == "phase"]
+    if len(per_phase):
+        keep = ["case_key", "phase_index"] + [c for c in TREND_COLUMNS if c in per_phase]
+        pt = per_phase[keep].rename(columns={c: f"trend_{c}" for c in TREND_COLUMNS})
+        pt = pt.assign(phase_index=pt["phase_index"].astype("int64"))
         phases = phases.merge(pt, on=["case_key", "phase_index"], how="left")
-    contrasts = pd.concat(contrast_parts, ignore_index=True) if contrast_parts else pd.DataFrame({"case_key": []})
-    return {"cases": cases, "phases": phases, "contrasts": contrasts}
+    return {"cases": cases, "phases": phases, "contrasts": contrasts.reset_index(drop=True)}
+
+
+def _empty_tables(obs: pd.DataFrame) -> dict[str, pd.DataFrame]:
+    """Tables of a review without accepted cases (columns of identity only)."""
+    return {"cases": obs.iloc[0:0][CASE_ID_COLUMNS].reset_index(drop=True),
+            "phases": pd.DataFrame({"case_key": pd.Series([], dtype=object),
+                                    "phase_index": pd.Series([], dtype="int64")}),
+            "contrasts": pd.DataFrame({"case_key": pd.Series([], dtype=object)})}
 
 
 TREND_COLUMNS = [
@@ -295,9 +297,10 @@ _EFFECT_RENAMES = {
 _EFFECT_DROP = ["design", "desired_direction", "outcome_scale", "alpha", "aggregation"]
 
 
-def _effect_columns(rows: list[dict]) -> pd.DataFrame:
+def _effect_columns(rows: pd.DataFrame | list[dict]) -> pd.DataFrame:
     """Case-level effect sizes (audit.effect_sizes.case_effect_sizes), flips named flip_*."""
-    frame = pd.DataFrame(rows).drop(columns=_EFFECT_DROP, errors="ignore").rename(columns=_EFFECT_RENAMES)
+    frame = pd.DataFrame(rows).reset_index(drop=True)
+    frame = frame.drop(columns=_EFFECT_DROP, errors="ignore").rename(columns=_EFFECT_RENAMES)
     if "lrr_se" in frame:
         frame["lrr_variance"] = frame["lrr_se"] ** 2
     for col in [c for c in frame if c.startswith("flip_")]:
@@ -305,9 +308,9 @@ def _effect_columns(rows: list[dict]) -> pd.DataFrame:
     return frame
 
 
-def _trend_columns(rows: list[dict]) -> pd.DataFrame:
+def _trend_columns(rows: pd.DataFrame) -> pd.DataFrame:
     """Trend of all baseline points together (audit.trend.baseline_trends, scope all_baseline)."""
-    frame = pd.DataFrame([{c: r.get(c, np.nan) for c in TREND_COLUMNS} for r in rows])
+    frame = rows.reindex(columns=TREND_COLUMNS).reset_index(drop=True)
     frame = frame.rename(columns={c: f"baseline_{c}" for c in TREND_COLUMNS})
     frame["baseline_moves_in_therapeutic_direction"] = frame["baseline_moves_in_therapeutic_direction"].fillna("unknown")
     return frame
@@ -315,10 +318,23 @@ def _trend_columns(rows: list[dict]) -> pd.DataFrame:
 
 def phase_table(obs: pd.DataFrame) -> pd.DataFrame:
     """One row per case and phase: size, mean, sd, raw r1 and Huitema-McKean r1+ (batched by phase length)."""
-    g = obs.groupby(["case_key", "phase_index"], sort=True)
+    # mean and sd from the outcomes scaled by a power of two per phase (exact): no overflow near
+    # the float limits; the scale is undone afterwards
+    yv = obs["outcome"].to_numpy(dtype=float)
+    work = obs.assign(_abs=np.abs(np.where(np.isfinite(yv), yv, 0.0)))
+    top = work.groupby(["case_key", "phase_index"], sort=False)["_abs"].transform("max").to_numpy()
+    ex = np.frexp(top)[1].astype(np.int64)
+    work = work.assign(_scaled=np.ldexp(yv, -ex), _ex=ex)
+    g = work.groupby(["case_key", "phase_index"], sort=True)
     table = g.agg(phase=("phase", "first"), condition=("condition", "first"), n=("outcome", "size"),
                   first_session=("session", "min"), last_session=("session", "max"),
-                  mean=("outcome", "mean"), sd=("outcome", "std")).reset_index()
+                  mean=("_scaled", "mean"), sd=("_scaled", "std"), _ex=("_ex", "first")).reset_index()
+    overflow = np.zeros(len(table), dtype=bool)
+    for col in ("mean", "sd"):
+        values = unscale(table[col].to_numpy(dtype=float), table["_ex"].to_numpy())
+        overflow |= np.isfinite(table[col].to_numpy(dtype=float)) & ~np.isfinite(values)
+        table[col] = np.where(np.isfinite(values), values, np.nan)
+    table = table.drop(columns="_ex")
     y = obs.sort_values(["case_key", "phase_index", "session"], kind="stable")["outcome"].to_numpy(dtype=float)
     starts = np.r_[0, np.cumsum(table["n"].to_numpy())[:-1]]
     cols = {name: np.full(len(table), np.nan) for name in ("r1", "r1_plus", "r1_plus_z", "r1_plus_p_value")}
@@ -334,6 +350,7 @@ def phase_table(obs: pd.DataFrame) -> pd.DataFrame:
         reason[rows] = res["reason"].to_numpy()
     for name, values in cols.items():
         table[name] = values
+    reason[overflow] = [R.join(r, R.NUMERICAL_FAILURE) for r in reason[overflow]]
     table["r1_reason"] = reason
     return table
 

@@ -39,6 +39,7 @@ from scipy import optimize
 
 from audit import reasons as R
 from audit.quadform import prob_quadform_below_zero, ratio_quantile
+from audit.regression import binary_exponents, scale_rows
 
 __all__ = [
     "DurbinWatsonResult",
@@ -157,6 +158,7 @@ def dw_statistic(residuals) -> float:
     e = np.asarray(residuals, dtype=float).ravel()
     if e.size < 2 or not np.all(np.isfinite(e)):
         return math.nan
+    e = scale_rows(e, binary_exponents(e))  # exact; d is scale-free (no overflow near 1e300)
     ss = float(e @ e)
     if ss == 0.0:
         return math.nan
@@ -249,8 +251,13 @@ def dw_test(residuals, design, alpha: float = 0.05, *, exact_critical_values: bo
         return _nan_result(n, max(k - 1, 0), alpha, reason)
     if n - k < 2:
         return _nan_result(n, kprime, alpha, R.NO_RESIDUAL_DF, dw_statistic(e))
+    ex = binary_exponents(e)
+    e = scale_rows(e, ex)  # exact; d is scale-free
+    if scale is not None:
+        with np.errstate(over="ignore"):
+            scale = float(np.ldexp(abs(float(scale)), -ex))
     ss = float(e @ e)
-    if ss == 0.0 or (scale is not None and math.sqrt(ss / n) <= _ZERO_RESID_RTOL * abs(scale)):
+    if ss == 0.0 or (scale is not None and math.sqrt(ss / n) <= _ZERO_RESID_RTOL * scale):
         return _nan_result(n, kprime, alpha, R.ZERO_RESIDUAL_VARIANCE)
     d = dw_statistic(e)
     mu = _null_eigs_from_basis(basis)

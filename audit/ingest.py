@@ -8,11 +8,11 @@ A file that cannot be used at all is reported as a file problem; the rest of the
 from __future__ import annotations
 
 import csv
-import io
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from audit.config import KNOWN_COLUMNS, REQUIRED_COLUMNS, AuditConfig
@@ -182,7 +182,10 @@ def detect_delimiter(lines: list[str], default: str = ",") -> str:
     if not sample:
         return default
     for delim in DELIMITERS:
-        counts = [len(row) for row in csv.reader(sample, delimiter=delim)]
+        try:
+            counts = [len(row) for row in csv.reader(sample, delimiter=delim)]
+        except csv.Error:  # e.g. a quoted field that never closes within the sample
+            continue
         if not counts or counts[0] < 2:
             continue
         consistent = sum(c == counts[0] for c in counts) / len(counts)
@@ -206,17 +209,36 @@ def detect_decimal(values: pd.Series, delimiter: str) -> str:
     return "," if commas > 0 and commas >= points else "."
 
 
+# Lines as io.StringIO(text, newline="") gives them (ends kept; \r\n, \r or \n), without its
+# 4-bytes-per-character copy of the whole text.
+_LINE = re.compile(r"[^\r\n]*(?:\r\n|\r|\n)|[^\r\n]+\Z")
+_HEAD_CHARS = 1 << 20  # text searched for the first lines (delimiter detection)
+_CACHE_PROBE_ROWS = 5_000  # after this many rows, stop sharing the cells of a column of mostly unique values
+
+
+def _lines(text: str):
+    for match in _LINE.finditer(text):
+        yield match.group()
+
+
 def _read_text(path: Path) -> tuple[list[tuple[str, pd.DataFrame]], dict[str, str]]:
     data = path.read_bytes()
     text, encoding = decode_text(data)
-    if not text.strip():
+    del data
+    if not text or text.isspace():
         return [], {"encoding": encoding}
-    lines = text.splitlines()
+    if csv.field_size_limit() < len(text) + 1:  # one long cell must not cost the whole file
+        csv.field_size_limit(min(len(text) + 1, 2**31 - 1))
     default = "\t" if path.suffix.lower() == ".tsv" else ","
-    delimiter = detect_delimiter(lines[:50], default)
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+    delimiter = detect_delimiter(text[:_HEAD_CHARS].splitlines()[:50], default)
+    reader = csv.reader(_lines(text), delimiter=delimiter)
     header: list[str] | None = None
-    records: list[list[str]] = []
+    width = 0
+    # Column by column; equal cells share one string object (ids, labels and small numbers repeat on
+    # every row: this keeps a million-row file to a few hundred MB).
+    columns: list[list[str]] = []
+    caches: list[dict[str, str] | None] = []
+    extra: list[str] = []
     line_numbers: list[int] = []
     try:
         for row in reader:
@@ -224,25 +246,30 @@ def _read_text(path: Path) -> tuple[list[tuple[str, pd.DataFrame]], dict[str, st
                 continue
             if header is None:
                 header = row
+                width = len(header)
+                columns = [[] for _ in range(width)]
+                caches = [{} for _ in range(width)]
                 continue
-            records.append(row)
+            # Ragged rows: short rows are padded; the surplus of long rows goes to a marker column (quarantined).
+            if len(row) < width:
+                row.extend([""] * (width - len(row)))
+            extra.append("" if len(row) <= width else delimiter.join(row[width:]))
+            for values, cache, cell in zip(columns, caches, row):
+                values.append(cell if cache is None else cache.setdefault(cell, cell))
             line_numbers.append(reader.line_num)
+            if len(line_numbers) == _CACHE_PROBE_ROWS:
+                caches = [None if c is None or len(c) > _CACHE_PROBE_ROWS // 2 else c for c in caches]
     except csv.Error as exc:
         raise _Unreadable("malformed_text_table", f"malformed text table near line {reader.line_num}: {exc}") from None
+    del reader, text, caches
     if header is None:
         return [], {"encoding": encoding, "delimiter": delimiter}
-    width = len(header)
-    # Ragged rows: pad short rows; keep the surplus of long rows in a marker column so they are quarantined.
-    fixed = []
-    extra = []
-    for row in records:
-        if len(row) < width:
-            row = row + [""] * (width - len(row))
-        extra.append("" if len(row) <= width else delimiter.join(row[width:]))
-        fixed.append(row[:width])
-    frame = pd.DataFrame(fixed, columns=_dedupe_header(header), dtype=object)
-    frame["__source_row"] = line_numbers
-    frame["__extra_fields"] = extra
+    names = _dedupe_header(header)
+    data_columns = {name: np.array(values, dtype=object) for name, values in zip(names, columns)}
+    del columns
+    frame = pd.DataFrame(data_columns, dtype=object, index=pd.RangeIndex(len(line_numbers)))
+    frame["__source_row"] = np.asarray(line_numbers, dtype=np.int64)
+    frame["__extra_fields"] = pd.Series(extra, dtype=object)
     details = {"encoding": encoding, "delimiter": delimiter}
     return [("", frame)], details
 
@@ -329,12 +356,12 @@ def _standardize(
             "Rename them or map them under [columns] in a config file (--config)",
             n,
         )
-    out = pd.DataFrame(index=range(n))
-    for canonical in KNOWN_COLUMNS:
-        if canonical in chosen:
-            out[canonical] = table[chosen[canonical]].to_numpy(dtype=object)
-        else:
-            out[canonical] = None
+    # object columns: the cells keep their string objects (no copy into another string type)
+    out = pd.DataFrame({
+        canonical: table[chosen[canonical]].to_numpy(dtype=object) if canonical in chosen
+        else np.full(n, None, dtype=object)
+        for canonical in KNOWN_COLUMNS
+    }, dtype=object, index=pd.RangeIndex(n))
     delimiter = details.get("delimiter")
     if delimiter is not None:
         decimal = detect_decimal(pd.concat([out["session"], out["outcome"]]), delimiter)
@@ -344,10 +371,10 @@ def _standardize(
     if decimal == ",":
         for col in ("session", "outcome"):
             out[col] = _decimal_comma_to_point(out[col])
-    out["source_file"] = file
-    out["source_sheet"] = sheet
+    out["source_file"] = pd.Series(np.full(n, file, dtype=object), index=out.index, dtype=object)
+    out["source_sheet"] = pd.Series(np.full(n, sheet, dtype=object), index=out.index, dtype=object)
     out["source_row"] = table["__source_row"].to_numpy(dtype="int64")
-    out["__extra_fields"] = table["__extra_fields"].to_numpy(dtype=object)
+    out["__extra_fields"] = pd.Series(table["__extra_fields"].to_numpy(dtype=object), index=out.index, dtype=object)
     return out, None
 
 

@@ -32,7 +32,9 @@ class ReviewInput:
             records.append({
                 "file": name,
                 "rows_read": f.rows_read,
-                "rows_accepted": int(obs.loc[obs["source_file"] == name, "n_source_rows"].sum()),
+                # own rows, plus own rows collapsed into an identical point (possibly of another file)
+                "rows_accepted": int((obs["source_file"] == name).sum())
+                + int(((adj["source_file"] == name) & (adj["rule"] == "duplicate_collapsed")).sum()),
                 "rows_quarantined": int(qf["n_rows"].sum()),
                 "problems": len(qf),
                 "adjustments": int((adj["source_file"] == name).sum()),

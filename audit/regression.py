@@ -16,7 +16,7 @@ All p-values are two-sided.  Degenerate input gives NaN plus a reason code from
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -40,6 +40,9 @@ __all__ = [
     "newey_west_default_lags",
     "design_reason",
     "series_reasons",
+    "binary_exponents",
+    "scale_rows",
+    "unscale",
 ]
 
 # Residual norm below this fraction of the data norm counts as an exact fit.
@@ -105,6 +108,33 @@ def _as_contrast(c, k: int) -> np.ndarray:
     return c
 
 
+def binary_exponents(Y) -> np.ndarray | int:
+    """Binary exponent e of the largest finite |value| of each row (of a 1-D series: an int).
+
+    Dividing a row by 2**e (``scale_rows``) is exact and brings its largest magnitude into
+    [0.5, 1), so sums of squares neither overflow nor underflow for values near the float limits
+    (1e300, 1e-300).  Rows without a nonzero finite value get 0.
+    """
+    Y = np.asarray(Y, dtype=float)
+    A = np.abs(np.where(np.isfinite(Y), Y, 0.0))
+    top = A.max(axis=-1) if A.shape[-1] else np.zeros(A.shape[:-1])
+    e = np.frexp(top)[1].astype(np.int64)
+    return int(e) if e.ndim == 0 else e
+
+
+def scale_rows(Y, e) -> np.ndarray:
+    """Y * 2**-e row by row (exact; e from ``binary_exponents``)."""
+    Y = np.asarray(Y, dtype=float)
+    e = np.asarray(e)
+    return np.ldexp(Y, -(e[..., None] if e.ndim else e))
+
+
+def unscale(values, e) -> np.ndarray:
+    """values * 2**e (undoes ``scale_rows`` for quantities linear in the data); inf on overflow."""
+    with np.errstate(over="ignore"):
+        return np.ldexp(np.asarray(values, dtype=float), np.asarray(e))
+
+
 def design_reason(X: np.ndarray) -> str:
     """Reason code for a design that cannot be used (NaN, n <= k, rank < k), else ''."""
     X = _as_design(X)
@@ -121,16 +151,20 @@ def design_reason(X: np.ndarray) -> str:
 def series_reasons(Y: np.ndarray, E: np.ndarray | None = None) -> np.ndarray:
     """Per-row reason codes for a batch of series: NaN, constant, exact fit (residuals E).
 
-    Rows with non-finite values must already have finite placeholders in E.
+    Rows with non-finite values must already have finite placeholders in E.  Both are scaled
+    by the same power of two per row first (exact), so extreme magnitudes cannot overflow.
     """
     Y = np.asarray(Y, dtype=float)
     out = np.full(Y.shape[0], R.OK, dtype=object)
     finite = np.all(np.isfinite(Y), axis=1)
-    Yf = np.where(np.isfinite(Y), Y, 0.0)
+    ex = binary_exponents(Y)
+    Yf = scale_rows(np.where(np.isfinite(Y), Y, 0.0), ex)
     scale = np.max(np.abs(Yf), axis=1)
     constant = np.ptp(Yf, axis=1) <= _CONSTANT_RTOL * scale
     if E is not None:
-        rss = np.sum(np.asarray(E) ** 2, axis=1)
+        Es = scale_rows(E, ex)
+        with np.errstate(over="ignore", invalid="ignore"):
+            rss = np.sum(Es**2, axis=1)
         exact = rss <= (_ZERO_FIT_RTOL**2) * np.sum(Yf**2, axis=1)
         out[exact] = R.ZERO_RESIDUAL_VARIANCE
     out[constant] = R.CONSTANT_SERIES
@@ -177,14 +211,22 @@ def _nan_test(method: str, reason: str, df=np.nan, rho=np.nan, lags=None) -> Con
     return ContrastTest(nan, nan, nan, float(df), nan, None, method, float(rho), reason, lags)
 
 
-def _frame(est, se, df, alpha, method, rho, lags, reason) -> pd.DataFrame:
+def _frame(est, se, df, alpha, method, rho, lags, reason, ex=None) -> pd.DataFrame:
+    """Result table; ``ex``: binary exponents the rows of Y were scaled by (est, se undone)."""
     est = np.asarray(est, dtype=float)
     se = np.asarray(se, dtype=float)
-    bad = np.array([bool(r) for r in reason])
+    reason = pd.Series(reason, dtype=object).to_numpy().copy()
+    bad = np.array([bool(r) for r in reason], dtype=bool)
     est = np.where(bad, np.nan, est)
     se = np.where(bad, np.nan, se)
     with np.errstate(divide="ignore", invalid="ignore"):
         stat = est / se
+    if ex is not None:
+        est, se = unscale(est, ex), unscale(se, ex)
+        over = ~bad & ~(np.isfinite(est) & np.isfinite(se))
+        if over.any():  # the result in the data's units exceeds the float range
+            reason[over] = R.NUMERICAL_FAILURE
+            est[over] = se[over] = stat[over] = np.nan
     p = _two_sided_t(stat, df) if np.isfinite(df) else np.full_like(est, np.nan)
     m = est.shape[0]
     return pd.DataFrame(
@@ -198,7 +240,7 @@ def _frame(est, se, df, alpha, method, rho, lags, reason) -> pd.DataFrame:
             "method": np.full(m, method, dtype=object),
             "rho": np.broadcast_to(np.asarray(rho, dtype=float), (m,)).copy(),
             "lags": pd.array([lags] * m, dtype="Int64"),
-            "reason": pd.Series(reason, dtype=object).to_numpy(),
+            "reason": reason,
         }
     )
 
@@ -224,16 +266,33 @@ def ols_fit(y, X) -> OLSFit:
     if reason:
         rank = int(np.linalg.matrix_rank(X)) if np.all(np.isfinite(X)) else 0
         return OLSFit(nan_k, nan_k.copy(), np.full(n, np.nan), np.nan, n - k, rank, reason)
+    ex = binary_exponents(y)
+    y = scale_rows(y, ex)  # exact; undone below (values near the float limits)
     coef, _, rank, _ = np.linalg.lstsq(X, y, rcond=None)
     resid = y - X @ coef
     df_resid = n - k
     sigma2 = float(resid @ resid / df_resid)
     reason = series_reasons(y[None, :], resid[None, :])[0]
-    if reason:
-        return OLSFit(coef, nan_k, resid, np.nan, df_resid, int(rank), reason)
-    xtx_inv = np.linalg.inv(X.T @ X)
-    se = np.sqrt(sigma2 * np.diag(xtx_inv))
-    return OLSFit(coef, se, resid, sigma2, df_resid, int(rank), R.OK)
+    se = nan_k
+    if not reason:
+        se = np.sqrt(sigma2 * np.diag(np.linalg.inv(X.T @ X)))
+    coef, resid, se = unscale(coef, ex), unscale(resid, ex), unscale(se, ex)
+    sigma2 = float(unscale(sigma2, 2 * ex)) if not reason else np.nan
+    if not (np.all(np.isfinite(coef)) and np.all(np.isfinite(resid))
+            and (reason or (np.all(np.isfinite(se)) and np.isfinite(sigma2)))):
+        return OLSFit(nan_k, nan_k.copy(), np.full(n, np.nan), np.nan, df_resid, int(rank),
+                      R.NUMERICAL_FAILURE)
+    return OLSFit(coef, se, resid, sigma2, df_resid, int(rank), reason)
+
+
+def _rescaled(test: ContrastTest, ex: int) -> ContrastTest:
+    """Estimate and standard error back in the data's units (the series was scaled by 2**-ex)."""
+    if ex == 0 or test.reason:
+        return test
+    est, se = float(unscale(test.estimate, ex)), float(unscale(test.std_error, ex))
+    if not (np.isfinite(est) and np.isfinite(se)):
+        return _nan_test(test.method, R.NUMERICAL_FAILURE, test.df, test.rho, test.lags)
+    return replace(test, estimate=est, std_error=se)
 
 
 def _contrast_from_fit(coef, cov, c, df, alpha, method, rho=np.nan, lags=None) -> ContrastTest:
@@ -271,11 +330,12 @@ def ols_contrast_test(y, X, c, alpha: float = 0.05) -> ContrastTest:
     n, k = X.shape
     if reason:
         return _nan_test("ols", reason, n - k)
-    fit = ols_fit(y, X)
+    ex = binary_exponents(y)
+    fit = ols_fit(scale_rows(y, ex), X)
     if fit.reason:
         return _nan_test("ols", fit.reason, n - k)
     cov = fit.sigma2 * np.linalg.inv(X.T @ X)
-    return _contrast_from_fit(fit.coef, cov, c, n - k, alpha, "ols")
+    return _rescaled(_contrast_from_fit(fit.coef, cov, c, n - k, alpha, "ols"), ex)
 
 
 def gls_contrast_test(y, X, c, rho: float, alpha: float = 0.05) -> ContrastTest:
@@ -293,6 +353,8 @@ def gls_contrast_test(y, X, c, rho: float, alpha: float = 0.05) -> ContrastTest:
         return _nan_test("gls_ar1", R.NON_FINITE_INPUT, n - k, rho)
     if abs(rho) >= 1.0:
         return _nan_test("gls_ar1", R.NUMERICAL_FAILURE, n - k, rho)
+    ex = binary_exponents(y)
+    y = scale_rows(y, ex)
     base = series_reasons(y[None, :], (y - X @ np.linalg.lstsq(X, y, rcond=None)[0])[None, :])[0]
     if base:
         return _nan_test("gls_ar1", base, n - k, rho)
@@ -302,7 +364,7 @@ def gls_contrast_test(y, X, c, rho: float, alpha: float = 0.05) -> ContrastTest:
     resid = ys - Xs @ coef
     s2 = float(resid @ resid) / (n - k)
     cov = s2 * np.linalg.inv(Xs.T @ Xs)
-    return _contrast_from_fit(coef, cov, c, n - k, alpha, "gls_ar1", rho)
+    return _rescaled(_contrast_from_fit(coef, cov, c, n - k, alpha, "gls_ar1", rho), ex)
 
 
 def hac_contrast_test(y, X, c, alpha: float = 0.05, maxlags: int | None = None) -> ContrastTest:
@@ -317,7 +379,8 @@ def hac_contrast_test(y, X, c, alpha: float = 0.05, maxlags: int | None = None) 
     L = max(0, min(L, n - 1))
     if reason:
         return _nan_test("hac", reason, n - k, lags=L)
-    fit = ols_fit(y, X)
+    ex = binary_exponents(y)
+    fit = ols_fit(scale_rows(y, ex), X)
     if fit.reason:
         return _nan_test("hac", fit.reason, n - k, lags=L)
     scores = X * fit.residuals[:, None]
@@ -328,7 +391,7 @@ def hac_contrast_test(y, X, c, alpha: float = 0.05, maxlags: int | None = None) 
         S += w * (G + G.T)
     bread = np.linalg.inv(X.T @ X)
     cov = bread @ S @ bread * (n / (n - k))
-    return _contrast_from_fit(fit.coef, cov, c, n - k, alpha, "hac", lags=L)
+    return _rescaled(_contrast_from_fit(fit.coef, cov, c, n - k, alpha, "hac", lags=L), ex)
 
 
 def contrast_test(y, X, c, method: str = "ols", alpha: float = 0.05, rho: float | None = None,
@@ -357,7 +420,8 @@ def _batch_prechecks(Y, X, c):
     xreason = design_reason(X)
     if xreason == R.OK and not np.any(c != 0):
         xreason = R.NO_CONTRAST
-    return Y, X, c, m, n, k, xreason
+    ex = binary_exponents(Y)
+    return scale_rows(Y, ex), X, c, m, n, k, xreason, ex
 
 
 def _ols_pieces(Y, X):
@@ -370,7 +434,7 @@ def _ols_pieces(Y, X):
 
 def ols_contrast_batch(Y, X, c, alpha: float = 0.05) -> pd.DataFrame:
     """Vectorised ``ols_contrast_test`` for m series (rows of Y) sharing the design X."""
-    Y, X, c, m, n, k, xreason = _batch_prechecks(Y, X, c)
+    Y, X, c, m, n, k, xreason, ex = _batch_prechecks(Y, X, c)
     if xreason:
         return _frame(np.full(m, np.nan), np.full(m, np.nan), n - k, alpha, "ols", np.nan, None,
                       [xreason] * m)
@@ -382,12 +446,12 @@ def ols_contrast_batch(Y, X, c, alpha: float = 0.05) -> pd.DataFrame:
     se = np.sqrt(s2 * (a @ a))
     reason = series_reasons(Y, E)
     reason = np.where((reason == R.OK) & ~(se > 0), R.ZERO_VARIANCE, reason)
-    return _frame(est, se, n - k, alpha, "ols", np.nan, None, reason)
+    return _frame(est, se, n - k, alpha, "ols", np.nan, None, reason, ex)
 
 
 def gls_contrast_batch(Y, X, c, rho, alpha: float = 0.05) -> pd.DataFrame:
     """Vectorised ``gls_contrast_test``: row i of Y with its own AR(1) coefficient rho[i]."""
-    Y, X, c, m, n, k, xreason = _batch_prechecks(Y, X, c)
+    Y, X, c, m, n, k, xreason, ex = _batch_prechecks(Y, X, c)
     rho = np.broadcast_to(np.asarray(rho, dtype=float), (m,)).copy()
     if xreason:
         return _frame(np.full(m, np.nan), np.full(m, np.nan), n - k, alpha, "gls_ar1", rho, None,
@@ -413,14 +477,14 @@ def gls_contrast_batch(Y, X, c, rho, alpha: float = 0.05) -> pd.DataFrame:
     s2 = np.sum(resid**2, axis=1) / (n - k)
     se = np.sqrt(s2 * np.sum(a**2, axis=1))
     reason = np.where((reason == R.OK) & ~(se > 0), R.ZERO_VARIANCE, reason)
-    return _frame(est, se, n - k, alpha, "gls_ar1", rho, None, reason)
+    return _frame(est, se, n - k, alpha, "gls_ar1", rho, None, reason, ex)
 
 
 def hac_contrast_batch(Y, X, c, alpha: float = 0.05, maxlags: int | None = None) -> pd.DataFrame:
     """Vectorised ``hac_contrast_test``: Var(c'b) = n/(n-k) v'Wv, v_t = h_t u_t,
     h = X(X'X)^-1 c, W Toeplitz with Bartlett weights 1 - |t-s|/(L+1) for |t-s| <= L.
     """
-    Y, X, c, m, n, k, xreason = _batch_prechecks(Y, X, c)
+    Y, X, c, m, n, k, xreason, ex = _batch_prechecks(Y, X, c)
     L = newey_west_default_lags(n) if maxlags is None else int(maxlags)
     L = max(0, min(L, n - 1))
     if xreason:
@@ -439,7 +503,7 @@ def hac_contrast_batch(Y, X, c, alpha: float = 0.05, maxlags: int | None = None)
     reason = series_reasons(Y, E)
     se = np.sqrt(np.where(var > 0, var, np.nan))
     reason = np.where((reason == R.OK) & ~(var > 0), R.ZERO_VARIANCE, reason)
-    return _frame(est, se, n - k, alpha, "hac", np.nan, L, reason)
+    return _frame(est, se, n - k, alpha, "hac", np.nan, L, reason, ex)
 
 
 def contrast_batch(Y, X, c, method: str = "ols", alpha: float = 0.05, rho=None,

@@ -17,6 +17,7 @@ Invariant: rows read = rows accepted + rows quarantined.
 from __future__ import annotations
 
 import hashlib
+import json
 from dataclasses import dataclass
 
 import numpy as np
@@ -80,11 +81,35 @@ class PreparedInput:
 
 
 def case_key(study: pd.Series, case: pd.Series, series: pd.Series) -> pd.Series:
-    """Stable, filesystem-safe key of a case: first 16 hex digits of sha1(study, case, series)."""
-    joined = study.astype(str) + "\x1f" + case.astype(str) + "\x1f" + series.astype(str)
-    uniq = pd.unique(joined)
-    keys = {u: hashlib.sha1(u.encode("utf-8", "surrogatepass")).hexdigest()[:16] for u in uniq}
-    return joined.map(keys)
+    """Stable, filesystem-safe key of a case: first 16 hex digits of sha1(study, case, series).
+
+    The ids (as text) are joined with the unit separator U+001F; ids that contain it themselves
+    are encoded as a JSON list instead (no raw U+001F in it), so different cases never share a
+    key.  Each distinct (study, case, series) is hashed once (factorized codes, no per-row text).
+    """
+    codes, labels = [], []
+    for values in (study, case, series):
+        c, u = pd.factorize(np.asarray(values, dtype=object), use_na_sentinel=False)
+        codes.append(c.astype(np.int64))
+        labels.append([str(v) for v in u])
+    if not len(codes[0]):
+        return pd.Series([], index=study.index, dtype=object)
+    sizes = [max(len(u), 1) for u in labels]
+    if sizes[0] * sizes[1] * sizes[2] < 2**62:
+        combined = (codes[0] * sizes[1] + codes[1]) * sizes[2] + codes[2]
+        uniq, inverse = np.unique(combined, return_inverse=True)
+        triples = zip(uniq // (sizes[1] * sizes[2]), (uniq // sizes[2]) % sizes[1], uniq % sizes[2])
+    else:  # pragma: no cover - more than 2**62 id combinations
+        uniq, inverse = np.unique(np.column_stack(codes), axis=0, return_inverse=True)
+        triples = map(tuple, uniq)
+    keys = []
+    for i, j, k in triples:
+        s, c, r = labels[0][i], labels[1][j], labels[2][k]
+        joined = f"{s}\x1f{c}\x1f{r}"
+        if joined.count("\x1f") != 2:
+            joined = json.dumps([s, c, r])
+        keys.append(hashlib.sha1(joined.encode("utf-8", "surrogatepass")).hexdigest()[:16])
+    return pd.Series(np.asarray(keys, dtype=object)[inverse.ravel()], index=study.index, dtype=object)
 
 
 def compact_rows(rows) -> str:
@@ -117,6 +142,13 @@ def _as_text(values: pd.Series) -> pd.Series:
         return text or None
 
     return pd.Series([one(v) for v in values.tolist()], index=values.index, dtype=object)
+
+
+def _map_unique(values: pd.Series, fn) -> pd.Series:
+    """fn applied once per distinct non-missing value (equal results share one object); None stays None."""
+    uniq = {v: fn(v) for v in pd.unique(values.dropna())}
+    return pd.Series([None if v is None else uniq.get(v, v) for v in values.tolist()], index=values.index,
+                     dtype=object)
 
 
 def _as_number(values: pd.Series) -> pd.Series:
@@ -180,8 +212,8 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
             frame[col] = frame[col].where(frame[col].notna(), defaults[col])
     frame["series"] = frame["series"].fillna("")
     for col in ("outcome_scale", "desired_direction"):
-        frame[col] = frame[col].where(frame[col].isna(), frame[col].str.lower())
-    frame["condition"] = frame["condition"].map(lambda v: None if v is None else normalise_condition(v))
+        frame[col] = _map_unique(frame[col], str.lower)
+    frame["condition"] = _map_unique(frame["condition"], normalise_condition)
     frame["session"] = _as_number(frame["session"])
     frame["outcome"] = _as_number(frame["outcome"])
     frame["extra_fields"] = _as_text(frame.get("__extra_fields", pd.Series([None] * n, dtype=object)))
@@ -212,6 +244,7 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
                 value = frame[column].iloc[pos] if column in frame else None
             value_text = None if value is None or (isinstance(value, float) and np.isnan(value)) else str(value)
             bad_rows[pos] = (rule, text, column, value_text)
+    del check, raw_session, raw_outcome  # (memory: a million-row input holds several copies otherwise)
 
     bad_mask = np.zeros(n, dtype=bool)
     if bad_rows:
@@ -229,6 +262,8 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
                      "(see the row entries); fix or remove those rows")
 
     good = frame[~bad_mask].copy()
+    # the rest needs only where each raw row came from (quarantine entries)
+    frame = frame[["source_file", "source_sheet", "source_row", "study", "case", "series", "case_key"]]
 
     # ---- conditions from phase labels where not given
     labels = good.loc[good["condition"].isna(), "phase"].unique()
@@ -248,15 +283,23 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
     dup_cols = ["case_key", "session", "outcome", "phase", "condition"]
     is_dup = good.duplicated(dup_cols, keep="first").to_numpy()
     adjustments: list[pd.DataFrame] = []
+    origin = ["case_key", "study", "case", "series", "source_file", "source_sheet", "source_row"]
+    collapsed = good.iloc[0:0][origin]  # the rows merged into an earlier identical point (any file)
     if is_dup.any():
         kept = good[~is_dup]
         dropped = good[is_dup]
-        keys = dropped[dup_cols].merge(kept[dup_cols + ["source_row"]], on=dup_cols, how="left")["source_row"].to_numpy()
+        collapsed = dropped[origin]
+        match = dropped[dup_cols].merge(kept[dup_cols + ["source_file", "source_sheet", "source_row"]],
+                                        on=dup_cols, how="left")
+        same_place = ((match["source_file"].to_numpy() == dropped["source_file"].to_numpy())
+                      & (match["source_sheet"].to_numpy() == dropped["source_sheet"].to_numpy()))
+        where = [f"exact duplicate of row {r}" + ("" if same else f" of {f}" + (f" [sheet {sh}]" if sh else ""))
+                 for r, f, sh, same in zip(match["source_row"], match["source_file"], match["source_sheet"], same_place)]
         adjustments.append(pd.DataFrame({
             "source_file": dropped["source_file"].to_numpy(), "source_sheet": dropped["source_sheet"].to_numpy(),
             "source_row": dropped["source_row"].to_numpy(), "study": dropped["study"].to_numpy(),
             "case": dropped["case"].to_numpy(), "series": dropped["series"].to_numpy(), "column": "row",
-            "old_value": [f"exact duplicate of row {k}" for k in keys], "new_value": "collapsed",
+            "old_value": where, "new_value": "collapsed",
             "rule": "duplicate_collapsed", "case_key": dropped["case_key"].to_numpy(),
         }))
         counts = good.groupby(dup_cols, sort=False, dropna=False)["_pos"].transform("size")
@@ -363,7 +406,7 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
             good[~given].groupby(["case_key", "phase_index"], sort=True)["condition"].first().dropna()
         )
         inferred = phase_conditions.groupby(level=0).agg(lambda c: design_from_conditions(list(c)))
-        good.loc[~given, "design"] = good.loc[~given, "case_key"].map(inferred).fillna("other")
+        good.loc[~given, "design"] = good.loc[~given, "case_key"].map(inferred).astype(object).fillna("other")
 
     # ---- case rules
     alternating = good["design"] == "alternating"
@@ -399,7 +442,9 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
     in_bad_case = good["case_key"].isin(bad_keys)
     accepted = good[~in_bad_case].reset_index(drop=True)
     rejected_rows = good[in_bad_case]
-    quarantine = _quarantine_table(frame, bad_rows, rejected_rows, problems, file_problems)
+    del good, in_bad_case
+    quarantine = _quarantine_table(frame, bad_rows, rejected_rows, problems, file_problems, collapsed)
+    del frame, rejected_rows, collapsed
     adj = pd.concat(adjustments, ignore_index=True) if adjustments else pd.DataFrame(columns=ADJUSTMENT_COLUMNS + ["case_key"])
     adj = adj[~adj["case_key"].isin(bad_keys)]
     if len(adj):
@@ -424,9 +469,11 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
         observations[col] = observations[col].astype("int64")
     observations["adjusted"] = observations["adjusted"].astype(bool)
     cases = _accepted_cases(accepted, adj_counts)
+    del accepted
+    observations = _typed(observations, Observations)
 
     total_read = n + sum(p.n_rows for p in file_problems)
-    result = PreparedInput(_typed(observations, Observations), _typed(cases, AcceptedCases),
+    result = PreparedInput(observations, _typed(cases, AcceptedCases),
                            _typed(adj, Adjustments), _typed(quarantine, Quarantine), total_read)
     if result.rows_accepted + result.rows_quarantined != total_read:  # pragma: no cover - invariant guard
         raise AssertionError(
@@ -467,7 +514,10 @@ def _accepted_cases(accepted: pd.DataFrame, adj_counts: pd.Series) -> pd.DataFra
     return cases
 
 
-def _quarantine_table(frame, bad_rows, rejected_rows, problems: _Problems, file_problems) -> pd.DataFrame:
+def _quarantine_table(frame, bad_rows, rejected_rows, problems: _Problems, file_problems,
+                      collapsed: pd.DataFrame | None = None) -> pd.DataFrame:
+    """Quarantine entries; a case entry counts every input row it removes in the file that row
+    came from (exact duplicates collapsed into a point of another file included)."""
     entries: list[dict] = []
     for p in file_problems:
         entries.append({
@@ -489,7 +539,11 @@ def _quarantine_table(frame, bad_rows, rejected_rows, problems: _Problems, file_
             })
     if problems.items:
         counted: set[str] = set()
-        by_key = {k: part for k, part in rejected_rows.groupby("case_key", sort=False)} if len(rejected_rows) else {}
+        removed = rejected_rows[["case_key", "study", "case", "series", "source_file", "source_sheet", "source_row"]]
+        if collapsed is not None and len(collapsed) and len(removed):
+            removed = pd.concat([removed, collapsed[collapsed["case_key"].isin(set(removed["case_key"]))]],
+                                ignore_index=True)
+        by_key = {k: part for k, part in removed.groupby("case_key", sort=False)} if len(removed) else {}
         for item in problems.items:
             key = item["case_key"]
             part = by_key.get(key)
@@ -502,7 +556,7 @@ def _quarantine_table(frame, bad_rows, rejected_rows, problems: _Problems, file_
                 meta = part.iloc[0]
                 groups = list(part.groupby(["source_file", "source_sheet"], sort=False))
             for i, ((f, sh), sub) in enumerate(groups):
-                n_rows = int(sub["n_source_rows"].sum()) if (first and sub is not None) else 0
+                n_rows = len(sub) if (first and sub is not None) else 0
                 entries.append({
                     "level": "case", "source_file": f, "source_sheet": sh,
                     "rows": compact_rows(sub["source_row"]) if sub is not None else "",
