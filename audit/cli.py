@@ -422,7 +422,7 @@ def cmd_report(args) -> int:
 def _add_analysis_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--alpha", type=float, metavar="A", help="significance level (default 0.05 or the config's)")
     p.add_argument("--config", metavar="FILE", help="TOML file with column and phase-label maps")
-    p.add_argument("--batch-size", type=int, metavar="N", help="cases per diagnose task (default 100)")
+    p.add_argument("--batch-size", type=int, metavar="N", help="cases per diagnose task (default 2000; larger batches share more design algebra)")
     p.add_argument("--lock-timeout", type=float, metavar="SECONDS",
                    help="how long to wait for another run writing the same store (default 60)")
 

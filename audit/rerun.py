@@ -60,7 +60,7 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
-DEFAULT_BATCH_SIZE = 100
+DEFAULT_BATCH_SIZE = 2000
 HASH_KEY = "case_hash"
 # Provenance only: where a point came from does not change its diagnostics, so renaming or
 # moving a file (or re-ordering its rows) does not force a recomputation.
