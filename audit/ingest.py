@@ -290,12 +290,14 @@ def _dedupe_header(header: list[str]) -> list[str]:
 
 def _read_excel(path: Path) -> tuple[list[tuple[str, pd.DataFrame]], dict[str, str]]:
     try:
-        book = pd.read_excel(path, sheet_name=None, header=None, dtype=object)
+        # keep_default_na=False: text such as "NA", "null" or "nan" is a value (e.g. a participant's
+        # initials), as in CSV files; only empty cells are missing
+        book = pd.read_excel(path, sheet_name=None, header=None, dtype=object, keep_default_na=False)
     except Exception as exc:  # openpyxl raises many types for damaged files
         raise _Unreadable("unreadable_spreadsheet", f"cannot read spreadsheet ({type(exc).__name__}: {exc})") from None
     sheets: list[tuple[str, pd.DataFrame]] = []
     for sheet_name, table in book.items():
-        table = table.dropna(how="all")
+        table = table[~table.map(_blank_cell).all(axis=1)]  # blank rows are skipped, as in text files
         if table.empty:
             continue
         header_pos = table.index[0]
@@ -306,6 +308,10 @@ def _read_excel(path: Path) -> tuple[list[tuple[str, pd.DataFrame]], dict[str, s
         frame["__extra_fields"] = ""
         sheets.append((str(sheet_name), frame))
     return sheets, {"sheets": ", ".join(name for name, _ in sheets)}
+
+
+def _blank_cell(value) -> bool:
+    return value is None or (isinstance(value, float) and value != value) or (isinstance(value, str) and not value.strip())
 
 
 def _read_parquet(path: Path) -> tuple[list[tuple[str, pd.DataFrame]], dict[str, str]]:
