@@ -29,6 +29,7 @@ from audit.autocorrelation import phase_lag1_batch, residual_lag1_batch
 from audit.design import CaseDesign, case_design
 from audit.batch_effects import baseline_trends_batch, case_effects_batch
 from audit.stacked import diagnose_series
+from audit.durbin_watson import dw_statistic_rows as _dw_rows, dw_zones as _zone
 from audit.durbin_watson import critical_bounds, dw_power, dw_pvalues_batch, dw_statistic
 from audit.regression import (
     binary_exponents,
@@ -43,25 +44,6 @@ DEFAULT_POWER_RHO = 0.3
 CASE_ID_COLUMNS = ["case_key", "study", "case", "series", "design", "outcome_scale", "desired_direction"]
 
 ProgressFn = Callable[[int, int], None]
-
-
-def _zone(d: np.ndarray, d_lower: float, d_upper: float) -> np.ndarray:
-    """DW zone from the bounds, vectorised; same rule and precedence as ``durbin_watson.dw_test``.
-
-    d < dL positive; dL <= d <= dU inconclusive_positive; then the same with 4 - d on the
-    negative side; otherwise none (the positive side wins when both apply, as for small n).
-    """
-    out = np.full(d.shape, "none", dtype=object)
-    if not (np.isfinite(d_lower) and np.isfinite(d_upper)):
-        out[:] = "unknown"
-        return out
-    dn = 4.0 - d
-    out[dn <= d_upper] = "inconclusive_negative"
-    out[dn < d_lower] = "negative"
-    out[d <= d_upper] = "inconclusive_positive"
-    out[d < d_lower] = "positive"
-    out[~np.isfinite(d)] = "unknown"
-    return out
 
 
 def _split_cases(obs: pd.DataFrame):
@@ -198,17 +180,6 @@ def diagnose_group(Y: np.ndarray, design: CaseDesign, alpha: float, supplied_rho
     out["reason"] = np.array([R.join(a, b, c_, R.NUMERICAL_FAILURE if o else R.OK) for a, b, c_, o in zip(
         out["effect_ols_reason"], out["ar1_reml_reason"], r1["reason"].to_numpy(), overflow)], dtype=object)
     return pd.DataFrame(out)
-
-
-def _dw_rows(E: np.ndarray, Y: np.ndarray) -> np.ndarray:
-    """DW statistic per row; NaN where the residuals are zero relative to the data (exact fit, constant)."""
-    num = np.sum(np.diff(E, axis=1) ** 2, axis=1)
-    den = np.sum(E**2, axis=1)
-    scale = np.max(np.abs(Y), axis=1) ** 2 * E.shape[1]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        d = num / den
-    d[~(den > 1e-20 * scale)] = np.nan
-    return d
 
 
 def _safe_power(X: np.ndarray, rho: float, alpha: float) -> float:

@@ -36,6 +36,7 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
+from audit.durbin_watson import dw_statistic_rows as _dw_rows, dw_zones as _zone
 from audit import reasons as R
 from audit.ar1 import _GRID, _brackets, _objective_from_pieces
 from audit.asymptotic_tests import ljung_box_default_lags
@@ -302,32 +303,6 @@ def _unique_rows(A: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     view = A.view(np.dtype((np.void, A.dtype.itemsize * A.shape[1]))).ravel()
     _, first, inverse = np.unique(view, return_index=True, return_inverse=True)
     return first, inverse.ravel()
-
-
-def _dw_rows(E: np.ndarray, Y: np.ndarray) -> np.ndarray:
-    """DW statistic per row; NaN where the residuals are zero relative to the data (as diagnose)."""
-    num = np.sum(np.diff(E, axis=1) ** 2, axis=1)
-    den = np.sum(E**2, axis=1)
-    scale = np.max(np.abs(Y), axis=1) ** 2 * E.shape[1]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        d = num / den
-    d[~(den > 1e-20 * scale)] = np.nan
-    return d
-
-
-def _zone(d: np.ndarray, d_lower: float, d_upper: float) -> np.ndarray:
-    """DW zone from the bounds (same rule and precedence as ``audit.diagnose``)."""
-    out = np.full(d.shape, "none", dtype=object)
-    if not (np.isfinite(d_lower) and np.isfinite(d_upper)):
-        out[:] = "unknown"
-        return out
-    dn = 4.0 - d
-    out[dn <= d_upper] = "inconclusive_negative"
-    out[dn < d_lower] = "negative"
-    out[d <= d_upper] = "inconclusive_positive"
-    out[d < d_lower] = "positive"
-    out[~np.isfinite(d)] = "unknown"
-    return out
 
 
 class _NullableBool:
