@@ -36,6 +36,7 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
+from audit.asymptotic_tests import ljung_box_batch
 from audit.durbin_watson import dw_statistic_rows as _dw_rows, dw_zones as _zone
 from audit import reasons as R
 from audit.ar1 import _GRID, _brackets, _objective_from_pieces
@@ -1246,31 +1247,9 @@ def _breusch_godfrey(E_ref, Y, des: _Designs, du, xreason, x_finite, n, k):
 
 
 def _ljung_box(E_ref, Y, h):
-    """``asymptotic_tests.ljung_box_batch``: Q(h) = n(n+2) sum_j r_j^2/(n-j) ~ chi2(h)."""
-    m, n = E_ref.shape
-    finite = np.all(np.isfinite(E_ref), axis=1)
-    E0 = np.where(np.isfinite(E_ref), E_ref, 0.0)
-    Ef = _scale_rows(E0, _binary_exponents(E0))  # exact; Q is scale-free
-    D = Ef - Ef.mean(axis=1, keepdims=True)
-    den = np.sum(D**2, axis=1)
-    scale = np.sum(Ef**2, axis=1)
-    reason = np.full(m, R.OK, dtype=object)
-    reason[~(den > 1e-20 * scale) | ~(scale > 0)] = R.ZERO_RESIDUAL_VARIANCE
-    data = series_reasons(Y, E0)
-    reason = np.where(data != R.OK, data, reason)
-    if n < 3 or h < 1 or h >= n:
-        reason[:] = R.TOO_FEW_POINTS
-    reason[~finite] = R.NON_FINITE_INPUT
-    ok = reason == R.OK
-    q = np.zeros(m)
-    if n >= 3 and 1 <= h < n:
-        safe = np.where(ok, den, 1.0)
-        for j in range(1, h + 1):
-            rj = np.sum(D[:, j:] * D[:, :-j], axis=1) / safe
-            q += rj**2 / (n - j)
-        q *= n * (n + 2.0)
-    q = np.where(ok, q, np.nan)
-    return q, _chi2_sf(q, h) if h >= 1 else np.full(m, np.nan)
+    """Ljung-Box Q(h) and p-value per row: ``asymptotic_tests.ljung_box_batch`` (already batched)."""
+    lb = ljung_box_batch(E_ref, h, Y)
+    return lb["statistic"].to_numpy(), lb["p_value"].to_numpy()
 
 
 def _empty_columns(out: dict, n: int, k: int, with_supplied: bool) -> dict:
