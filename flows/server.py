@@ -98,10 +98,14 @@ def _alive(pid: int) -> bool:
         return True
 
 
+# The server is on this machine: never send its requests through a proxy set in the environment.
+LOCAL_OPENER = urllib.request.build_opener(urllib.request.ProxyHandler({}))
+
+
 def healthy(api_url: str, timeout: float = 2.0) -> bool:
     """True when ``<api_url>/health`` answers 200."""
     try:
-        with urllib.request.urlopen(f"{api_url}/health", timeout=timeout) as resp:
+        with LOCAL_OPENER.open(f"{api_url}/health", timeout=timeout) as resp:
             return resp.status == 200
     except (urllib.error.URLError, OSError, ValueError):
         return False

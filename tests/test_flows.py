@@ -18,6 +18,7 @@ import sys
 import tempfile
 import threading
 import time
+import urllib.error
 import urllib.request
 from pathlib import Path
 
@@ -177,16 +178,29 @@ def test_schedule_definition(tmp_path):
 # ----------------------------------------------------------------------------------- server
 
 
+def _open(req, timeout: float, tries: int = 8):
+    """Open a request on the local server. Retries 429/502/503 with backoff, as Prefect's own client does:
+    the SQLite-backed server answers 503 while its database is briefly locked by the runner's polling."""
+    from flows.server import LOCAL_OPENER
+
+    for attempt in range(tries):
+        try:
+            with LOCAL_OPENER.open(req, timeout=timeout) as resp:
+                return json.loads(resp.read())
+        except urllib.error.HTTPError as exc:
+            if exc.code not in (429, 502, 503) or attempt == tries - 1:
+                raise
+            time.sleep(min(0.5 * 2**attempt, 8.0))
+
+
 def _get(url: str, timeout: float = 5.0):
-    with urllib.request.urlopen(url, timeout=timeout) as resp:
-        return json.loads(resp.read())
+    return _open(url, timeout)
 
 
 def _post(url: str, body: dict, timeout: float = 10.0):
     req = urllib.request.Request(url, data=json.dumps(body).encode(), method="POST",
                                  headers={"Content-Type": "application/json"})
-    with urllib.request.urlopen(req, timeout=timeout) as resp:
-        return json.loads(resp.read())
+    return _open(req, timeout)
 
 
 def _wait(what: str, check, timeout: float, every: float = 0.5):
