@@ -34,7 +34,7 @@ from audit import __version__
 from audit.config import AuditConfig
 from audit.ingest import FileProblem, FileRead, InputError, read_input_file
 from audit.intake import ReviewInput, combine, read_files
-from audit.store import ResultsStore, content_hash, file_sha256
+from audit.store import ResultsStore, content_hashes_of_slices, file_sha256
 
 __all__ = [
     "DEFAULT_BATCH_SIZE",
@@ -222,8 +222,9 @@ def _canonical(observations: pd.DataFrame) -> pd.DataFrame:
 def case_hashes(observations: pd.DataFrame, parameters: Mapping[str, Any], code_version: str) -> pd.Series:
     """case_key -> SHA-256 of the case's observation values, the parameters and the code version.
 
-    Uses :func:`audit.store.content_hash` on each case's rows (in session order, provenance
-    columns source_file/source_sheet/source_row left out, dtypes fixed).
+    Equals :func:`audit.store.content_hash` of each case's rows (in session order, provenance
+    columns source_file/source_sheet/source_row left out, dtypes fixed), computed for all cases
+    in one pass by :func:`audit.store.content_hashes_of_slices`.
     """
     if observations.empty:
         return pd.Series([], index=pd.Index([], name="case_key", dtype=object), name=HASH_KEY, dtype=object)
@@ -231,12 +232,8 @@ def case_hashes(observations: pd.DataFrame, parameters: Mapping[str, Any], code_
     canon = _canonical(obs)
     keys = obs["case_key"].to_numpy()
     bounds = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1], True])
-    params = dict(parameters)
-    out = {}
-    for start, stop in zip(bounds[:-1], bounds[1:]):
-        part = canon.iloc[start:stop].reset_index(drop=True)
-        out[str(keys[start])] = content_hash(part, params, str(code_version))
-    series = pd.Series(out, name=HASH_KEY, dtype=object)
+    digests = content_hashes_of_slices(canon, bounds, dict(parameters), str(code_version))
+    series = pd.Series(digests, index=[str(k) for k in keys[bounds[:-1]]], name=HASH_KEY, dtype=object)
     series.index.name = "case_key"
     return series
 

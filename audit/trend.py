@@ -3,6 +3,12 @@ Hamed-Rao variance correction) and a flag for baselines already moving in the th
 
 All functions take plain arrays and return frozen dataclasses; degenerate input gives NaN plus a
 reason code from :mod:`audit.reasons`, never an exception.
+
+Values near the float limits: sessions and outcomes are each divided by a power of two
+(``audit.regression.binary_exponents``, exact) before sums of squares and pairwise slopes, and the
+results are scaled back; for ordinary data this gives the same bits as the unscaled arithmetic.
+A slope, intercept or standard error beyond the largest double is NaN with reason
+``numerical_failure``; scale-free results (t, p-values, Mann-Kendall, Hamed-Rao) are still given.
 """
 
 from __future__ import annotations
@@ -14,6 +20,7 @@ import pandas as pd
 from scipy import stats
 
 from audit import reasons as R
+from audit.regression import binary_exponents, scale_rows, unscale
 
 __all__ = [
     "OLSSlope",
@@ -29,6 +36,7 @@ __all__ = [
     "baseline_trend",
     "baseline_trends",
     "normalize_direction",
+    "unscale_checked",
 ]
 
 _NAN = float("nan")
@@ -59,6 +67,38 @@ def _finite_pair(x, y) -> tuple[np.ndarray, np.ndarray, str]:
     return x, y, R.OK
 
 
+def unscale_checked(values, e):
+    """(values * 2**e, not_representable): NaN where a finite value would exceed the largest double.
+
+    Undoes an exact power-of-two scaling (``audit.regression.scale_rows``); works on scalars and arrays.
+    """
+    v = np.asarray(values, dtype=float)
+    out = unscale(v, e)
+    bad = np.isfinite(v) & ~np.isfinite(out)
+    out = np.where(bad, np.nan, out)
+    if out.ndim == 0:
+        return float(out), bool(bad)
+    return out, bad
+
+
+def scaled_ratio(num, den, e):
+    """(num / den) * 2**e as ``unscale_checked`` (a ratio of scaled quantities, scaled back)."""
+    with np.errstate(over="ignore", divide="ignore", invalid="ignore", under="ignore"):
+        q = np.asarray(num, dtype=float) / np.asarray(den, dtype=float)
+    return unscale_checked(q, e)
+
+
+def _scaled(v: np.ndarray) -> tuple[int, np.ndarray]:
+    """(e, v * 2**-e) with e the binary exponent of max |v| (exact)."""
+    e = binary_exponents(v)
+    return e, scale_rows(v, e)
+
+
+def _sign_of_difference(u: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """sign(u - v) by comparison (no overflow for values near the float limits)."""
+    return (u > v).astype(float) - (u < v).astype(float)
+
+
 def _tie_groups(values: np.ndarray) -> np.ndarray:
     """Sizes (>1) of groups of exactly equal values."""
     if values.size == 0:
@@ -87,33 +127,44 @@ class OLSSlope:
 
 
 def ols_slope(x, y) -> OLSSlope:
-    """OLS slope of y on x, its standard error and two-sided t-test p-value (n - 2 df)."""
+    """OLS slope of y on x, its standard error and two-sided t-test p-value (n - 2 df).
+
+    Computed on x / 2**ex and y / 2**ey (exact) and scaled back; slope, intercept or standard error
+    beyond the largest double are NaN with reason numerical_failure (t and p are scale-free).
+    """
     x, y, reason = _finite_pair(x, y)
     n = int(x.size)
     if reason:
         return OLSSlope(n, _NAN, _NAN, _NAN, _NAN, _NAN, _NAN, reason)
     if n < 2:
         return OLSSlope(n, _NAN, _NAN, _NAN, _NAN, _NAN, _NAN, R.TOO_FEW_POINTS)
-    xc = x - x.mean()
+    ex, xs = _scaled(x)
+    ey, ys = _scaled(y)
+    xm, ym = xs.mean(), ys.mean()
+    xc = xs - xm
     sxx = float(xc @ xc)
     if not sxx > 0:
         return OLSSlope(n, _NAN, _NAN, _NAN, _NAN, _NAN, _NAN, R.SINGULAR_DESIGN)
-    yc = y - y.mean()
-    slope = float(xc @ yc) / sxx
-    intercept = float(y.mean() - slope * x.mean())
+    yc = ys - ym
+    b = float(xc @ yc) / sxx  # slope * 2**(ex - ey)
+    slope, bad_slope = unscale_checked(b, ey - ex)
+    intercept, bad_intercept = unscale_checked(float(ym - b * xm), ey)
+    overflow = R.NUMERICAL_FAILURE if (bad_slope or bad_intercept) else R.OK
     df = n - 2
     if df < 1:
-        return OLSSlope(n, slope, intercept, _NAN, _NAN, float(df), _NAN, R.NO_RESIDUAL_DF)
-    resid = yc - slope * xc
+        return OLSSlope(n, slope, intercept, _NAN, _NAN, float(df), _NAN, R.join(R.NO_RESIDUAL_DF, overflow))
+    resid = yc - b * xc
     ssr = float(resid @ resid)
     sst = float(yc @ yc)
     if ssr <= 1e-20 * sst or sst == 0.0:
-        code = R.join(R.ZERO_RESIDUAL_VARIANCE, R.CONSTANT_SERIES if sst == 0.0 else "")
+        code = R.join(R.ZERO_RESIDUAL_VARIANCE, R.CONSTANT_SERIES if sst == 0.0 else "", overflow)
         return OLSSlope(n, slope, intercept, 0.0, _NAN, float(df), _NAN, code)
-    se = float(np.sqrt(ssr / df / sxx))
-    t = slope / se
+    se_scaled = float(np.sqrt(ssr / df / sxx))
+    se, bad_se = unscale_checked(se_scaled, ey - ex)
+    t = b / se_scaled
     p = float(2.0 * stats.t.sf(abs(t), df))
-    return OLSSlope(n, slope, intercept, se, t, float(df), p, R.OK)
+    return OLSSlope(n, slope, intercept, se, t, float(df), p,
+                    R.join(overflow, R.NUMERICAL_FAILURE if bad_se else R.OK))
 
 
 # ----------------------------------------------------------------------------------------------
@@ -134,12 +185,34 @@ class TheilSenSlope:
     reason: str
 
 
+def _pairwise_slopes_scaled(x: np.ndarray, y: np.ndarray):
+    """(ex, ey, x / 2**ex, y / 2**ey, sorted pairwise slopes of the scaled values over pairs with
+    x_j > x_i); a scaled slope times 2**(ey - ex) is the slope."""
+    ex, xs = _scaled(x)
+    ey, ys = _scaled(y)
+    dx = xs[:, None] - xs[None, :]
+    dy = ys[:, None] - ys[None, :]
+    keep = dx > 0
+    with np.errstate(over="ignore"):
+        slopes = np.sort(dy[keep] / dx[keep])
+    return ex, ey, xs, ys, slopes
+
+
+def _median_sorted(v: np.ndarray) -> float:
+    """Median of a sorted non-empty array (as np.median)."""
+    k = v.size
+    with np.errstate(over="ignore"):
+        return float(v[k // 2]) if k % 2 else float((v[k // 2 - 1] + v[k // 2]) / 2.0)
+
+
 def theil_sen_slope(x, y, confidence: float = 0.95) -> TheilSenSlope:
     """Theil-Sen slope and Sen (1968, eq. 2.6) interval, computed as scipy.stats.theilslopes does.
 
     The interval takes the order statistics of the N pairwise slopes at ranks
     round((N -/+ z * sigma) / 2), sigma^2 = [n(n-1)(2n+5) - sum_x t(t-1)(2t+5)
     - sum_y t(t-1)(2t+5)] / 18 (ties in x and in y), z the normal quantile.
+    Slopes are taken between x / 2**ex and y / 2**ey (exact) and scaled back; a slope or intercept
+    beyond the largest double is NaN with reason numerical_failure.
     """
     x, y, reason = _finite_pair(x, y)
     n = int(x.size)
@@ -147,14 +220,19 @@ def theil_sen_slope(x, y, confidence: float = 0.95) -> TheilSenSlope:
         return TheilSenSlope(n, _NAN, _NAN, _NAN, _NAN, confidence, reason)
     if n < 2:
         return TheilSenSlope(n, _NAN, _NAN, _NAN, _NAN, confidence, R.TOO_FEW_POINTS)
-    dx = x[:, None] - x[None, :]
-    dy = y[:, None] - y[None, :]
-    keep = dx > 0
-    slopes = np.sort(dy[keep] / dx[keep])
+    ex, ey, xs, ys, slopes = _pairwise_slopes_scaled(x, y)
     if slopes.size == 0:
         return TheilSenSlope(n, _NAN, _NAN, _NAN, _NAN, confidence, R.SINGULAR_DESIGN)
-    slope = float(np.median(slopes))
-    intercept = float(np.median(y) - slope * np.median(x))
+    b = _median_sorted(slopes)
+    slope, bad = unscale_checked(b, ey - ex)
+    with np.errstate(over="ignore", invalid="ignore"):
+        intercept_scaled = float(np.median(ys) - b * np.median(xs))
+    intercept, bad_i = unscale_checked(intercept_scaled, ey)
+    if not np.isfinite(intercept_scaled):
+        intercept, bad_i = _NAN, True
+    overflow = R.NUMERICAL_FAILURE if (bad or bad_i or not np.isfinite(b)) else R.OK
+    if not np.isfinite(b):
+        slope = _NAN
     a = 1.0 - confidence if confidence > 0.5 else confidence
     z = stats.norm.ppf(a / 2.0)
     ties = float(sum(t * (t - 1) * (2 * t + 5) for t in _tie_groups(x)))
@@ -162,13 +240,16 @@ def theil_sen_slope(x, y, confidence: float = 0.95) -> TheilSenSlope:
     sigsq = (n * (n - 1) * (2 * n + 5) - ties) / 18.0
     nt = slopes.size
     if not sigsq >= 0:
-        return TheilSenSlope(n, slope, intercept, _NAN, _NAN, confidence, R.NUMERICAL_FAILURE)
+        return TheilSenSlope(n, slope, intercept, _NAN, _NAN, confidence, R.join(R.NUMERICAL_FAILURE, overflow))
     sigma = np.sqrt(sigsq)
     upper = min(int(np.round((nt - z * sigma) / 2.0)), nt - 1)
     lower = max(int(np.round((nt + z * sigma) / 2.0)) - 1, 0)
-    return TheilSenSlope(
-        n, slope, intercept, float(slopes[lower]), float(slopes[upper]), confidence, R.OK
-    )
+    low, bad_low = unscale_checked(slopes[lower], ey - ex)
+    high, bad_high = unscale_checked(slopes[upper], ey - ex)
+    low, high = (low if np.isfinite(low) else _NAN), (high if np.isfinite(high) else _NAN)
+    if not (np.isfinite(low) and np.isfinite(high)):
+        overflow = R.NUMERICAL_FAILURE
+    return TheilSenSlope(n, slope, intercept, low, high, confidence, overflow)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -209,8 +290,8 @@ def mann_kendall_exact_sf(s: float, n: int) -> float:
 
 
 def _kendall_s(x: np.ndarray, y: np.ndarray) -> float:
-    sx = np.sign(x[None, :] - x[:, None])
-    sy = np.sign(y[None, :] - y[:, None])
+    sx = _sign_of_difference(x[None, :], x[:, None])
+    sy = _sign_of_difference(y[None, :], y[:, None])
     return float(np.triu(sx * sy, 1).sum())
 
 
@@ -315,10 +396,13 @@ def mann_kendall_hamed_rao_lag1(
     if n < 3:
         return nan_result(R.TOO_FEW_POINTS)
     mk = mann_kendall(x, y, continuity=continuity)
-    ts = theil_sen_slope(x, y)
-    if not np.isfinite(ts.theil_sen_slope):
-        return nan_result(R.join(ts.reason, mk.reason))
-    detrended = y - ts.theil_sen_slope * x
+    _, _, xs, ys, slopes = _pairwise_slopes_scaled(x, y)
+    if slopes.size == 0:
+        return nan_result(R.join(R.SINGULAR_DESIGN, mk.reason))
+    b = _median_sorted(slopes)  # Sen's slope of the scaled series: same ranks after detrending
+    if not np.isfinite(b):
+        return nan_result(R.NUMERICAL_FAILURE)
+    detrended = ys - b * xs
     ranks = stats.rankdata(detrended)
     r1 = _lag1_autocorrelation(ranks)
     if not np.isfinite(r1):  # detrended series constant (y exactly linear in x)

@@ -24,6 +24,7 @@ from audit.store import (
     StoreError,
     StoreLockedError,
     content_hash,
+    content_hashes_of_slices,
     file_sha256,
 )
 
@@ -324,6 +325,20 @@ def test_content_hash_properties():
     assert content_hash(pd.DataFrame({"x": [[1, 2], [3]]})) == content_hash(
         pd.DataFrame({"x": [[1, 2], [3]]})
     )
+
+
+def test_content_hashes_of_slices_equal_content_hash_of_each_slice():
+    df = rich_frame()
+    n = len(df)
+    bounds = [0, 1, 1, n - 1, n]  # includes an empty slice
+    got = content_hashes_of_slices(df, bounds, {"alpha": 0.05}, "v1")
+    want = [content_hash(df.iloc[b:e].reset_index(drop=True), {"alpha": 0.05}, "v1")
+            for b, e in zip(bounds[:-1], bounds[1:])]
+    assert got == want
+    assert got[0] != got[3] and got[1] != got[0]  # different rows (or none), different digests
+    ragged = pd.DataFrame({"x": [[1, 2], [3], [4]]})  # unhashable cells: the per-slice fallback
+    assert content_hashes_of_slices(ragged, [0, 2, 3]) == [content_hash(ragged.iloc[:2]),
+                                                           content_hash(ragged.iloc[2:].reset_index(drop=True))]
 
 
 def test_content_hash_same_in_another_process():
