@@ -51,7 +51,7 @@ from audit.quadform import (
 from audit.regression import newey_west_default_lags, series_reasons
 
 __all__ = ["diagnose_stack", "diagnose_designs", "diagnose_series", "case_design_stacks", "stack_groups",
-           "DEFAULT_POWER_RHO"]
+           "gls_at_rhos", "DEFAULT_POWER_RHO"]
 
 DEFAULT_POWER_RHO = 0.3
 CASE_BLOCK = 50_000  # cases whose designs are built together in diagnose_series (bounds memory)
@@ -449,6 +449,90 @@ class _Designs:
         if no_c.size:
             Xa = np.concatenate([np.ones((no_c.size, n, 1)), Xs[no_c]], axis=2)
             self.Qa_noconst[no_c] = np.linalg.qr(Xa)[0]
+
+
+class _ContrastRows:
+    """OLS pieces of a stack (Y already scaled by powers of two) and the GLS-AR(1) contrast test
+    at a rho per row: c'b_GLS = c'b_OLS + a'M(rho)^-1 m(rho), Var = RSS*/(n-k) a'M^-1 a."""
+
+    def __init__(self, Y: np.ndarray, X: np.ndarray, C: np.ndarray):
+        m, n = Y.shape
+        k = X.shape[2]
+        self.m, self.df = m, n - k
+        first, du = _unique_rows(X)
+        des = _Designs(X[first])
+        self.du, self.des = du, des
+        self.xreason = des.reason[du]
+        self.design_ok = des.ok[du]
+        no_contrast = ~np.any(C != 0, axis=1)
+        self.creason = np.where((self.xreason == R.OK) & no_contrast, R.NO_CONTRAST, self.xreason)
+        self.Yf = np.where(np.isfinite(Y), Y, 0.0)
+        self.Qr = des.Q[du]
+        self.q = np.einsum("mnk,mn->mk", self.Qr, self.Yf)
+        self.Ef = self.Yf - np.einsum("mnk,mk->mn", self.Qr, self.q)
+        self.sreason = series_reasons(Y, self.Ef)
+        self.a = np.linalg.solve(des.Rf[du].transpose(0, 2, 1), C[:, :, None])[:, :, 0]  # a = R^-T c
+        self.est_ols = np.einsum("mk,mk->m", self.q, self.a)
+        ok_rows = self.design_ok  # cross products for GLS are needed on every usable design
+        self.ar_all = _AR1Rows(self.Ef[ok_rows], self.Qr[ok_rows], des.A1[du[ok_rows]], des.A2[du[ok_rows]],
+                               n, k) if ok_rows.any() else None
+        self.pos_in_ok = np.cumsum(ok_rows) - 1
+
+    def gls(self, rho_in: np.ndarray, alpha: float):
+        """Estimate, se, p, significance and reason of the GLS contrast with row i at rho_in[i]."""
+        m, df, creason = self.m, self.df, self.creason
+        rho_in = np.asarray(rho_in, dtype=float)
+        reason = np.where(creason != R.OK, creason, self.sreason)
+        bad_rho = ~np.isfinite(rho_in)
+        reason = np.where((reason == R.OK) & bad_rho, R.NON_FINITE_INPUT, reason)
+        reason = np.where((reason == R.OK) & (np.abs(np.where(bad_rho, 0, rho_in)) >= 1.0),
+                          R.NUMERICAL_FAILURE, reason)
+        r = np.where(reason == R.OK, rho_in, 0.0)
+        est = np.full(m, np.nan)
+        se = np.full(m, np.nan)
+        rows = np.flatnonzero(creason == R.OK)
+        if rows.size and df > 0:
+            sub = self.ar_all.take(self.pos_in_ok[rows])
+            Minv, b, rss, _, _, _ = sub.at(r[rows])
+            ar = self.a[rows]
+            est[rows] = self.est_ols[rows] + np.sum(ar * b, axis=1)
+            with np.errstate(invalid="ignore"):
+                se[rows] = np.sqrt(rss / df * np.einsum("mi,mij,mj->m", ar, Minv, ar))
+        reason = np.where((reason == R.OK) & ~(se > 0), R.ZERO_VARIANCE, reason)
+        e_, s_, p_ = _masked_test(est, se, reason, df)
+        return e_, s_, p_, _significance(p_, alpha), reason
+
+
+def gls_at_rhos(Y, X, C, rhos, n_transitions=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """GLS-AR(1) effect tests of a stack of cases at several rho each: estimate, se, p of shape (m, J).
+
+    ``rhos`` (m, J) or (J,); the ``effect_gls_supplied_*`` columns of ``diagnose_stack`` for each
+    column of rhos (NaN where rho is not finite, for cases without a baseline/treatment
+    transition, and where the data allow no test), without the other diagnostics.
+    """
+    with np.errstate(all="ignore"):
+        Y = np.asarray(Y, dtype=float)
+        X = np.asarray(X, dtype=float)
+        C = np.asarray(C, dtype=float)
+        m = Y.shape[0]
+        rhos = np.asarray(rhos, dtype=float)
+        rhos = np.broadcast_to(rhos if rhos.ndim == 2 else rhos[None, :], (m, rhos.shape[-1]))
+        J = rhos.shape[1]
+        out = tuple(np.full((m, J), np.nan) for _ in range(3))
+        if m == 0:
+            return out
+        ex = _binary_exponents(Y)
+        cr = _ContrastRows(_scale_rows(Y, ex), X, C)
+        n_trans = np.count_nonzero(C, axis=1) if n_transitions is None else np.asarray(n_transitions)
+        dead_case = np.broadcast_to(n_trans, (m,)) == 0
+        for j in range(J):
+            est, se, p, _, _ = cr.gls(np.nan_to_num(rhos[:, j]), 0.05)
+            est, se = np.ldexp(est, ex), np.ldexp(se, ex)
+            dead = dead_case | ~np.isfinite(rhos[:, j]) | ~np.isfinite(est) | ~np.isfinite(se)
+            out[0][:, j] = np.where(dead, np.nan, est)
+            out[1][:, j] = np.where(dead, np.nan, se)
+            out[2][:, j] = np.where(dead, np.nan, p)
+        return out
 
 
 # ----------------------------------------------------------------------------- Imhof pieces
@@ -855,20 +939,13 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
     ex = _binary_exponents(Y)
     Y = _scale_rows(Y, ex)
 
-    # ---- designs (once per distinct X)
-    first, du = _unique_rows(X)
-    des = _Designs(X[first])
-    xreason = des.reason[du]
-    design_ok = des.ok[du]
-    no_contrast = ~np.any(C != 0, axis=1)
-    creason = np.where((xreason == R.OK) & no_contrast, R.NO_CONTRAST, xreason)  # contrast tests
+    # ---- designs (once per distinct X), OLS pieces and the GLS contrast at any rho
+    cr = _ContrastRows(Y, X, C)
+    du, des, xreason, design_ok, creason = cr.du, cr.des, cr.xreason, cr.design_ok, cr.creason
+    Yf, Qr, q, Ef, sreason, a, est_ols = cr.Yf, cr.Qr, cr.q, cr.Ef, cr.sreason, cr.a, cr.est_ols
+    y_finite = np.all(np.isfinite(Y), axis=1)
 
     # ---- residuals: Yf zero-filled (batch functions), E_ref with NaN rows (diagnose's pinv path)
-    y_finite = np.all(np.isfinite(Y), axis=1)
-    Yf = np.where(np.isfinite(Y), Y, 0.0)
-    Qr = des.Q[du]
-    q = np.einsum("mnk,mn->mk", Qr, Yf)
-    Ef = Yf - np.einsum("mnk,mk->mn", Qr, q)
     E_ref = Ef.copy()
     pin = np.isin(du, des.pinv_rows)
     if pin.any():
@@ -876,12 +953,8 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
     E_ref[~y_finite] = np.nan
     x_finite = des.reason[du] != R.NON_FINITE_INPUT
     E_ref[~x_finite] = np.nan
-    sreason = series_reasons(Y, Ef)
 
     # ---- OLS contrast: a = R^-T c, h = Q a, estimate a'Q'y, Var = s2 a'a
-    Rr = des.Rf[du]
-    a = np.linalg.solve(Rr.transpose(0, 2, 1), C[:, :, None])[:, :, 0]
-    est_ols = np.einsum("mk,mk->m", q, a)
     aa = np.sum(a * a, axis=1)
     rss_ols = np.sum(Ef**2, axis=1)
     se_ols = np.sqrt(rss_ols / df * aa) if df > 0 else np.full(m, np.nan)
@@ -900,10 +973,7 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
     rho_reml = np.full(m, np.nan)
     rho_ml = np.full(m, np.nan)
     at_bound = np.zeros(m, dtype=bool)
-    ok_rows = design_ok  # cross products for GLS are needed on every usable design
-    ar_all = _AR1Rows(Ef[ok_rows], Qr[ok_rows], des.A1[du[ok_rows]], des.A2[du[ok_rows]], n, k) \
-        if ok_rows.any() else None
-    pos_in_ok = np.cumsum(ok_rows) - 1
+    ar_all, pos_in_ok = cr.ar_all, cr.pos_in_ok
     good = np.flatnonzero(ar_reason == R.OK)
     if good.size:
         fits = _ar1_fit(ar_all.take(pos_in_ok[good]), du[good], des)
@@ -920,26 +990,7 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
 
     # ---- GLS with the REML rho (rho 0 where REML failed, as diagnose_group)
     def gls(rho_in: np.ndarray):
-        rho_in = np.asarray(rho_in, dtype=float)
-        reason = np.where(creason != R.OK, creason, sreason)
-        bad_rho = ~np.isfinite(rho_in)
-        reason = np.where((reason == R.OK) & bad_rho, R.NON_FINITE_INPUT, reason)
-        reason = np.where((reason == R.OK) & (np.abs(np.where(bad_rho, 0, rho_in)) >= 1.0),
-                          R.NUMERICAL_FAILURE, reason)
-        r = np.where(reason == R.OK, rho_in, 0.0)
-        est = np.full(m, np.nan)
-        se = np.full(m, np.nan)
-        rows = np.flatnonzero(creason == R.OK)
-        if rows.size and df > 0:
-            sub = ar_all.take(pos_in_ok[rows])
-            Minv, b, rss, _, _, _ = sub.at(r[rows])
-            ar = a[rows]
-            est[rows] = est_ols[rows] + np.sum(ar * b, axis=1)
-            with np.errstate(invalid="ignore"):
-                se[rows] = np.sqrt(rss / df * np.einsum("mi,mij,mj->m", ar, Minv, ar))
-        reason = np.where((reason == R.OK) & ~(se > 0), R.ZERO_VARIANCE, reason)
-        e_, s_, p_ = _masked_test(est, se, reason, df)
-        return e_, s_, p_, _significance(p_, alpha), reason
+        return cr.gls(rho_in, alpha)
 
     e_g, s_g, p_g, sig_g, r_g = gls(np.nan_to_num(rho_reml, nan=0.0))
     r_gls = np.where(ar_reason != R.OK, ar_reason, r_g)
