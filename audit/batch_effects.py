@@ -36,9 +36,20 @@ from audit.effect_sizes import (
     TauU,
     contrast_effect_sizes,
     hedges_correction,
+    sd_frame,
     tau_u_permutation_variance,
 )
-from audit.trend import MANN_KENDALL_EXACT_MAX_N, BaselineTrend, baseline_trend, normalize_direction
+from audit.regression import binary_exponents, scale_rows
+from audit.trend import (
+    MANN_KENDALL_EXACT_MAX_N,
+    BaselineTrend,
+    baseline_trend,
+    normalize_direction,
+    scaled_ratio,
+    scaling_exponents,
+    unscale_checked,
+    window_exponents,
+)
 
 __all__ = ["case_effects_batch", "baseline_trends_batch", "CASE_LEVEL_COLUMNS"]
 
@@ -177,27 +188,32 @@ def _gather(values: np.ndarray, rows: np.ndarray, start: np.ndarray, length: np.
 
 
 def _segment_moments(values, rows, start, length):
-    """Per segment: mean, SD (ddof=1; NaN below 2 points), max, min, all finite.
+    """Per segment: scaling exponent e (audit.trend.scaling_exponents), mean and SD (ddof=1; NaN
+    below 2 points) of the values times 2**-e, max, min, all finite.
 
     Computed per segment length on (m, n) arrays along the last axis, which performs the same
     summation as numpy on each segment alone (bit-identical means and SDs).
     """
     s = len(start)
     mean, sd, mx, mn = (np.full(s, _NAN) for _ in range(4))
+    expo = np.zeros(s, dtype=np.int64)
     finite = np.zeros(s, dtype=bool)
     for n in np.unique(length):
         sel = np.flatnonzero(length == n)
         if n == 0:
             continue
         v = values[rows[start[sel][:, None] + np.arange(n)]]
+        e = scaling_exponents(v)
+        vs = scale_rows(v, e)
         with np.errstate(all="ignore"):
-            mean[sel] = v.mean(axis=1)
+            mean[sel] = vs.mean(axis=1)
             if n >= 2:
-                sd[sel] = v.std(axis=1, ddof=1)
+                sd[sel] = vs.std(axis=1, ddof=1)
             mx[sel] = v.max(axis=1)
             mn[sel] = v.min(axis=1)
+        expo[sel] = e
         finite[sel] = np.isfinite(v).all(axis=1)
-    return mean, sd, mx, mn, finite
+    return expo, mean, sd, mx, mn, finite
 
 
 # ----------------------------------------------------------------------------------------------
@@ -397,7 +413,7 @@ def case_effects_batch(obs: pd.DataFrame, rho: np.ndarray, alpha: float = 0.05,
     seg_na = np.bincount(seg_of_row, weights=is_a, minlength=seg_start.size)
     seg_nb = np.bincount(seg_of_row, weights=is_b, minlength=seg_start.size)
     seg_alt = alt[seg_case] if seg_start.size else np.zeros(0, dtype=bool)
-    seg_mean, seg_sd, seg_max, seg_min, seg_finite = _segment_moments(y, seg_order, seg_start, seg_len)
+    seg_e, seg_mean, seg_sd, seg_max, seg_min, seg_finite = _segment_moments(y, seg_order, seg_start, seg_len)
 
     # ---- rho: given, or lag-1 autocorrelation of residuals from group means
     given = np.isfinite(rho)
@@ -407,8 +423,13 @@ def case_effects_batch(obs: pd.DataFrame, rho: np.ndarray, alpha: float = 0.05,
                                                    "phase_mean_residual_lag1")).astype(object)
     if (~given).any():
         case_finite = np.bincount(cs, weights=~np.isfinite(y), minlength=ncase) == 0
+        # r1 is scale-free: each case scaled by 2**-E (E its scaling exponent), exact
+        top = np.zeros(ncase)
+        np.maximum.at(top, cs, np.abs(np.where(np.isfinite(y), y, 0.0)))
+        case_e = window_exponents(np.frexp(top)[1])
         with np.errstate(all="ignore"):
-            e = y - seg_mean[seg_of_row]
+            seg_mean_case = np.ldexp(seg_mean, seg_e - case_e[seg_case])  # segment means in case units
+            e = np.ldexp(y, -case_e[cs]) - seg_mean_case[seg_of_row]
             same_case = cs[1:] == cs[:-1]
             same = same_case & (alt_row[1:] | (ph[1:] == ph[:-1]))
             num = np.bincount(cs[1:][same], weights=(e[:-1] * e[1:])[same], minlength=ncase)
@@ -431,7 +452,7 @@ def case_effects_batch(obs: pd.DataFrame, rho: np.ndarray, alpha: float = 0.05,
         seg_case, seg_g, seg_len, seg_na, seg_nb, seg_alt, ph_uniq, cond_names, ncase)
     values = y[seg_order]  # values in segment order: segment s is values[seg_start[s]:+seg_len[s]]
     rows_identity = np.arange(nrow)
-    cols = _contrast_columns(values, rows_identity, seg_start, seg_len, seg_mean, seg_sd, seg_max, seg_min,
+    cols = _contrast_columns(values, rows_identity, seg_start, seg_len, seg_e, seg_mean, seg_sd, seg_max, seg_min,
                              seg_finite, con_case, con_bseg, con_tseg, decrease, assumed, direction,
                              direction_raw, scale_raw, rho_used, alpha, confidence)
     per_contrast = _per_contrast_frame(keys, con_case, con_label, con_bph, con_tph, cols)
@@ -537,10 +558,12 @@ def _pairwise_counts(values, rows, seg_start, seg_len, bseg, tseg, sign):
     return pos, neg, ties, s_trend, tie_sum
 
 
-def _contrast_columns(values, rows, seg_start, seg_len, seg_mean, seg_sd, seg_max, seg_min, seg_finite,
+def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd, seg_max, seg_min, seg_finite,
                       con_case, bseg, tseg, decrease_case, assumed_case, direction_case, direction_raw,
                       scale_raw, rho_case, alpha, confidence) -> dict[str, np.ndarray]:
-    """Every per-contrast column (ContrastEffectSizes.as_row keys) as arrays over contrasts."""
+    """Every per-contrast column (ContrastEffectSizes.as_row keys) as arrays over contrasts.
+
+    seg_mean and seg_sd are in units of 2**seg_e (as audit.effect_sizes: scaled near the float limits)."""
     m = len(con_case)
     na_i, nb_i = seg_len[bseg], seg_len[tseg]
     na, nb = na_i.astype(float), nb_i.astype(float)
@@ -555,8 +578,21 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_mean, seg_sd, seg_ma
     rho_code = _codes(rho_ok, R.NON_FINITE_INPUT)
     with np.errstate(all="ignore"):
         na_e, nb_e = _effective(na, rho_used), _effective(nb, rho_used)
-    ma, mb = seg_mean[bseg], seg_mean[tseg]
-    sa, sb = seg_sd[bseg], seg_sd[tseg]
+    ea, eb = seg_e[bseg], seg_e[tseg]
+    ma_s, mb_s = seg_mean[bseg], seg_mean[tseg]  # scaled by 2**-ea, 2**-eb
+    sa_s, sb_s = seg_sd[bseg], seg_sd[tseg]
+    ma, bad_ma = unscale_checked(ma_s, ea)
+    mb, bad_mb = unscale_checked(mb_s, eb)
+    sa, bad_sa = unscale_checked(sa_s, ea)
+    sb, bad_sb = unscale_checked(sb_s, eb)
+    # common frames (audit.effect_sizes._contrast_scales): mean difference in units of 2**e_md,
+    # variances in units of 2**(2 e_sd)
+    e_md = np.maximum(ea, eb)
+    with np.errstate(all="ignore"):
+        md_s = sign * (np.ldexp(mb_s, eb - e_md) - np.ldexp(ma_s, ea - e_md))
+        md, bad_md = unscale_checked(md_s, e_md)
+        e_sd = sd_frame(sa_s, ea, sb_s, eb, e_md)
+        sa_f, sb_f = np.ldexp(sa_s, ea - e_sd), np.ldexp(sb_s, eb - e_sd)
     finite = seg_finite[bseg] & seg_finite[tseg]
     pos, neg, ties, s_trend, tie_sum = _pairwise_counts(values, rows, seg_start, seg_len, bseg, tseg, sign)
     const = lambda v, dt=object: np.full(m, v, dtype=dt)  # noqa: E731
@@ -637,18 +673,31 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_mean, seg_sd, seg_ma
         scale_case = np.array([None if v is None else str(v).strip().lower() for v in scale_raw], dtype=object)
         scale = scale_case[con_case] if m else np.zeros(0, dtype=object)
         ratio = np.isin(scale.astype(str), list(RATIO_SCALES)) & np.array([v is not None for v in scale], bool)
+        moments_overflow = _codes(~(bad_ma | bad_mb | bad_sa | bad_sb), R.NUMERICAL_FAILURE)
+        badmean = bad_ma | bad_mb
         posmean = (ma > 0) & (mb > 0)
         two = (na_i >= 2) & (nb_i >= 2)
-        b2 = ratio & ~posmean
-        b3 = ratio & posmean & ~two
-        b4 = ratio & posmean & two
+        b1 = ratio & badmean
+        b2 = ratio & ~badmean & ~posmean
+        b3 = ratio & ~badmean & posmean & ~two
+        b4 = ratio & ~badmean & posmean & two
         lrr = np.where(b3 | b4, np.log(mb) - np.log(ma), _NAN)
-        lbc = np.where(b4, np.log(mb) + sb**2 / (2 * nb * mb**2) - np.log(ma) - sa**2 / (2 * na * ma**2), _NAN)
-        lvar = np.where(b4, sa**2 / (na * ma**2) + sb**2 / (nb * mb**2), _NAN)
-        lvar_adj = np.where(b4 & rho_ok, sa**2 / (na_e * ma**2) + sb**2 / (nb_e * mb**2), _NAN)
-        code = np.where(~ratio, R.NOT_RATIO_SCALE, np.where(b2, R.NONPOSITIVE_MEAN, np.where(
-            b3, R.TOO_FEW_POINTS, np.where(lvar > 0, R.OK, R.ZERO_VARIANCE)))).astype(object)
+        # SD/mean ratios within a phase are scale-free: taken on the scaled values
+        lbc = np.where(b4, np.log(mb) + sb_s**2 / (2 * nb * mb_s**2) - np.log(ma) - sa_s**2 / (2 * na * ma_s**2), _NAN)
+        lvar = np.where(b4, sa_s**2 / (na * ma_s**2) + sb_s**2 / (nb * mb_s**2), _NAN)
+        bad_lv = b4 & ~(np.isfinite(lbc) & np.isfinite(lvar))
+        lbc, lvar = np.where(bad_lv, _NAN, lbc), np.where(bad_lv, _NAN, lvar)
+        b4 = b4 & ~bad_lv
+        lvar_adj = np.where(b4 & rho_ok, sa_s**2 / (na_e * ma_s**2) + sb_s**2 / (nb_e * mb_s**2), _NAN)
+        bad_adj = b4 & rho_ok & ~np.isfinite(lvar_adj)
+        lvar_adj = np.where(bad_adj, _NAN, lvar_adj)
+        code = np.where(~ratio, R.NOT_RATIO_SCALE, np.where(b1 | bad_lv, R.NUMERICAL_FAILURE, np.where(
+            b2, R.NONPOSITIVE_MEAN, np.where(b3, R.TOO_FEW_POINTS, np.where(lvar > 0, R.OK, R.ZERO_VARIANCE))))
+                        ).astype(object)
+        code = np.where(b1 | bad_lv, code, _join_rows([code, moments_overflow])).astype(object)
         code_adj = np.where(b4 & ~rho_ok, R.NON_FINITE_INPUT, code).astype(object)
+        code_adj = np.where(bad_adj, _join_rows([code_adj, _codes(~bad_adj, R.NUMERICAL_FAILURE)]),
+                            code_adj).astype(object)
         imp = sign * lbc
         lse = np.where(np.isfinite(lvar) & (lvar >= 0), np.sqrt(lvar), _NAN)
         zq = stats.norm.ppf(0.5 + confidence / 2.0)
@@ -666,38 +715,49 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_mean, seg_sd, seg_ma
                         desired_direction=direction, direction_assumed=assumed, reason=code,
                         reason_adjusted=code_adj)
 
-        # ---- standardized mean difference
-        md = sign * (mb - ma)
+        # ---- standardized mean difference (ratios of scaled quantities)
         df_p = na_i + nb_i - 2
-        ss = (na - 1) * np.where(na_i > 1, sa**2, 0.0) + (nb - 1) * np.where(nb_i > 1, sb**2, 0.0)
-        sp = np.where(df_p >= 1, np.sqrt(ss / df_p), _NAN)
+        ss = (na - 1) * np.where(na_i > 1, sa_f**2, 0.0) + (nb - 1) * np.where(nb_i > 1, sb_f**2, 0.0)
+        sp_s = np.where(df_p >= 1, np.sqrt(ss / df_p), _NAN)  # pooled SD in units of 2**e_sd
+        sp, bad_sp = unscale_checked(sp_s, e_sd)
         j_b = _cached(hedges_correction, (na_i - 1)[:, None]) if m else np.zeros(0)
         j_p = _cached(hedges_correction, df_p[:, None]) if m else np.zeros(0)
-        ok_b = (na_i >= 2) & (sa > 0)
-        smd_b = np.where(ok_b, md / sa, _NAN)
+        ok_b = (na_i >= 2) & (sa_s > 0)
+        smd_b, bad_b = scaled_ratio(md_s, sa_s, e_md - ea)
+        bad_b &= ok_b
+        ok_b &= ~bad_b
+        smd_b = np.where(ok_b, smd_b, _NAN)
         smd_bh = np.where(ok_b, smd_b * j_b, _NAN)
-        reason_b = np.where(na_i < 2, R.TOO_FEW_POINTS, np.where(~(sa > 0), R.ZERO_VARIANCE, np.where(
-            np.isfinite(j_b), R.OK, R.TOO_FEW_POINTS))).astype(object)
-        ok_p = (df_p >= 1) & (sp > 0)
-        smd_p = np.where(ok_p, md / sp, _NAN)
+        reason_b = np.where(na_i < 2, R.TOO_FEW_POINTS, np.where(~(sa_s > 0), R.ZERO_VARIANCE, np.where(
+            bad_b, R.NUMERICAL_FAILURE, np.where(np.isfinite(j_b), R.OK, R.TOO_FEW_POINTS)))).astype(object)
+        ok_p = (df_p >= 1) & (sp_s > 0)
+        smd_p, bad_p = scaled_ratio(md_s, sp_s, e_md - e_sd)
+        bad_p &= ok_p
+        ok_p &= ~bad_p
+        smd_p = np.where(ok_p, smd_p, _NAN)
         smd_ph = np.where(ok_p, smd_p * j_p, _NAN)
-        reason_p = np.where(df_p < 1, R.TOO_FEW_POINTS, np.where(~(sp > 0), R.ZERO_VARIANCE, np.where(
-            np.isfinite(j_p), R.OK, R.TOO_FEW_POINTS))).astype(object)
+        reason_p = np.where(df_p < 1, R.TOO_FEW_POINTS, np.where(~(sp_s > 0), R.ZERO_VARIANCE, np.where(
+            bad_p, R.NUMERICAL_FAILURE, np.where(np.isfinite(j_p), R.OK, R.TOO_FEW_POINTS)))).astype(object)
+        md_code = _codes(~bad_md, R.NUMERICAL_FAILURE)
+        reason_b = _join_rows([reason_b, md_code, _codes(~bad_sa, R.NUMERICAL_FAILURE)])
+        reason_p = _join_rows([reason_p, md_code, _codes(~bad_sp, R.NUMERICAL_FAILURE)])
         f["smd"] = dict(mean_difference=md, sd_baseline=sa, sd_pooled=sp, smd_baseline_sd=smd_b,
                         smd_baseline_sd_hedges=smd_bh, smd_pooled_sd=smd_p, smd_pooled_sd_hedges=smd_ph,
                         desired_direction=direction, direction_assumed=assumed, reason_baseline_sd=reason_b,
                         reason_pooled_sd=reason_p)
 
         # ---- mean difference t-tests
-        va, vb = sa**2, sb**2
-        w = _welch(md, va, vb, na, nb)
-        pl = _pooled(md, sp, na, nb)
-        wa = _welch(md, va, vb, na_e, nb_e)
-        pa = _pooled(md, sp, na_e, nb_e)
+        va, vb = sa_f**2, sb_f**2
+        w = _welch(md_s, va, vb, na, nb, e_md, e_sd)
+        pl = _pooled(md_s, sp_s, na, nb, e_md, e_sd)
+        wa = _welch(md_s, va, vb, na_e, nb_e, e_md, e_sd)
+        pa = _pooled(md_s, sp_s, na_e, nb_e, e_md, e_sd)
         for t in (wa, pa):
             for arr in t[:4]:
                 arr[~rho_ok] = _NAN
             t[4][~rho_ok] = R.NON_FINITE_INPUT
+        if bad_md.any():  # the mean difference itself is not representable
+            w, wa, pl, pa = ((*t[:4], _join_rows([t[4], md_code])) for t in (w, wa, pl, pa))
         f["mean_difference"] = dict(
             mean_difference=md, rho_used=rho_used, n_baseline_effective=na_e, n_treatment_effective=nb_e,
             welch_se=w[0], welch_df=w[1], welch_t=w[2], welch_p_value=w[3], welch_se_adjusted=wa[0],
@@ -731,31 +791,41 @@ def _count_beyond(values, rows, seg_start, seg_len, tseg, sign, extreme):
     return out
 
 
-def _welch(md, va, vb, na, nb):
-    """Welch t-test pieces (se, df, t, p, reason) as audit.effect_sizes._welch, element-wise."""
+def _welch(md, va, vb, na, nb, e_md, e_v):
+    """Welch t-test pieces (se, df, t, p, reason) as audit.effect_sizes._welch, element-wise
+    (md in units of 2**e_md, va and vb in units of 2**(2 e_v))."""
     ok = (na > 1) & (nb > 1) & np.isfinite(va) & np.isfinite(vb)
     qa, qb = va / na, vb / nb
     se2 = qa + qb
     pos = ok & (se2 > 0)
-    se = np.where(pos, np.sqrt(se2), np.where(ok, 0.0, _NAN))
+    se_pos, bad_se = unscale_checked(np.sqrt(se2), e_v)
+    t_pos, bad_t = scaled_ratio(md, np.sqrt(se2), e_md - e_v)
+    bad_se, bad_t = bad_se & pos, bad_t & pos
+    se = np.where(pos, se_pos, np.where(ok, 0.0, _NAN))
     df = np.where(pos, se2**2 / (qa**2 / (na - 1) + qb**2 / (nb - 1)), _NAN)
-    t = np.where(pos, md / np.sqrt(se2), _NAN)
-    p = _t_two_sided(t, df, pos)
-    reason = np.where(~ok, R.TOO_FEW_POINTS, np.where(pos, R.OK, R.ZERO_VARIANCE)).astype(object)
+    t = np.where(pos & ~bad_t, t_pos, _NAN)
+    p = _t_two_sided(t, df, pos & ~bad_t)
+    reason = np.where(~ok, R.TOO_FEW_POINTS, np.where(~pos, R.ZERO_VARIANCE, np.where(
+        bad_t | bad_se, R.NUMERICAL_FAILURE, R.OK))).astype(object)
     return se, df, t, p, reason
 
 
-def _pooled(md, sp, na, nb):
-    """Pooled-variance t-test pieces as audit.effect_sizes._pooled, element-wise."""
+def _pooled(md, sp, na, nb, e_md, e_v):
+    """Pooled-variance t-test pieces as audit.effect_sizes._pooled, element-wise (md and sp in
+    units of 2**e_md and 2**e_v)."""
     df = na + nb - 2
     ok = np.isfinite(sp) & (df > 0)
     pos = ok & (sp > 0)
-    se_pos = sp * np.sqrt(1.0 / na + 1.0 / nb)
+    se_scaled = sp * np.sqrt(1.0 / na + 1.0 / nb)
+    se_pos, bad_se = unscale_checked(se_scaled, e_v)
+    t_pos, bad_t = scaled_ratio(md, se_scaled, e_md - e_v)
+    bad_se, bad_t = bad_se & pos, bad_t & pos
     se = np.where(pos, se_pos, np.where(ok, 0.0, _NAN))
     df_out = np.where(ok, df, _NAN)
-    t = np.where(pos, md / se_pos, _NAN)
-    p = _t_two_sided(t, df, pos)
-    reason = np.where(~ok, R.TOO_FEW_POINTS, np.where(pos, R.OK, R.ZERO_VARIANCE)).astype(object)
+    t = np.where(pos & ~bad_t, t_pos, _NAN)
+    p = _t_two_sided(t, df, pos & ~bad_t)
+    reason = np.where(~ok, R.TOO_FEW_POINTS, np.where(~pos, R.ZERO_VARIANCE, np.where(
+        bad_t | bad_se, R.NUMERICAL_FAILURE, R.OK))).astype(object)
     return se, df_out, t, p, reason
 
 
@@ -807,6 +877,19 @@ def _case_level_frame(cols, ci, ncase, design, direction, assumed, scale_raw, rh
 
     def cany(mask):
         return np.bincount(ci, weights=mask.astype(float), minlength=ncase) > 0
+
+    def cexponent(v, mask):
+        """Scaling exponent (audit.trend.scaling_exponents) of each case's masked values."""
+        top = np.zeros(ncase)
+        np.maximum.at(top, ci[mask], np.abs(v[mask]))
+        return window_exponents(np.frexp(top)[1])
+
+    def cmean(v, mask):
+        """(mean of each case's masked values, not representable), via an exact power-of-two scaling."""
+        e = cexponent(v, mask)
+        cnt = np.bincount(ci, weights=mask.astype(float), minlength=ncase)
+        mean_s = csum(np.ldexp(v, -e[ci]) if len(ci) else v, mask) / cnt
+        return unscale_checked(mean_s, e)
 
     def cjoin(codes: np.ndarray) -> np.ndarray:
         """R.join of a reason column over each case's contrasts."""
@@ -881,40 +964,52 @@ def _case_level_frame(cols, ci, ncase, design, direction, assumed, scale_raw, rh
                    lrr_flip=np.where(anyok, _flip(lp, lpa, alpha), None),
                    lrr_reason=np.where(anyok, R.OK, cjoin(cols["lrr_reason"])).astype(object))
 
+        smd_overflow = np.zeros(ncase, dtype=bool)
         for key in ("smd_baseline_sd", "smd_baseline_sd_hedges", "smd_pooled_sd", "smd_pooled_sd_hedges"):
             v = cols[key].astype(float)
             ok = np.isfinite(v)
             cnt = np.bincount(ci, weights=ok.astype(float), minlength=ncase)
-            out[key] = np.where(cnt > 0, csum(v, ok) / cnt, _NAN)
-        out["smd_reason"] = cjoin(cols["smd_reason_baseline_sd"])
+            mean, bad = cmean(v, ok)
+            out[key] = np.where(cnt > 0, mean, _NAN)
+            smd_overflow |= bad & (cnt > 0)
+        out["smd_reason"] = _join_rows([cjoin(cols["smd_reason_baseline_sd"]),
+                                        _codes(~smd_overflow, R.NUMERICAL_FAILURE)])
 
         md = cols["mean_difference"].astype(float)
         okm = np.isfinite(md)
         cnt = np.bincount(ci, weights=okm.astype(float), minlength=ncase)
-        out["mean_difference"] = np.where(cnt > 0, csum(md, okm) / cnt, _NAN)
+        md_mean, md_bad = cmean(md, okm)
+        out["mean_difference"] = np.where(cnt > 0, md_mean, _NAN)
+        md_overflow = _codes(~(md_bad & (cnt > 0)), R.NUMERICAL_FAILURE)
 
         def combined_welch(se_key, df_key):
+            """(p, not representable) per case; standard errors scaled by 2**-g per case (exact)."""
             se_c = cols[se_key].astype(float)
             df_c = cols[df_key].astype(float)
             okc = okm & np.isfinite(se_c) & np.isfinite(df_c) & (se_c > 0)
             kk = np.bincount(ci, weights=okc.astype(float), minlength=ncase)
-            d = csum(md, okc) / kk
-            var_c = se_c**2
+            d, bad_d = cmean(md, okc)
+            g = cexponent(se_c, okc)
+            var_c = np.ldexp(se_c, -g[ci]) ** 2 if len(ci) else se_c
             sv = csum(var_c, okc)
             se_tot = np.sqrt(sv) / kk
             df_tot = sv**2 / csum(np.where(okc, var_c**2 / df_c, 0.0), okc)
-            good = kk > 0
-            return _t_two_sided(np.abs(d) / se_tot, df_tot, good) if ncase else np.zeros(0)
+            t, bad_t = scaled_ratio(np.abs(d), se_tot, -g)
+            good = (kk > 0) & np.isfinite(t)
+            p = _t_two_sided(t, df_tot, good) if ncase else np.zeros(0)
+            return p, (kk > 0) & ~good & (bad_d | bad_t)
 
-        p = combined_welch("mean_difference_welch_se", "mean_difference_welch_df")
-        pa = combined_welch("mean_difference_welch_se_adjusted", "mean_difference_welch_df_adjusted")
+        p, bad_p = combined_welch("mean_difference_welch_se", "mean_difference_welch_df")
+        pa, bad_pa = combined_welch("mean_difference_welch_se_adjusted", "mean_difference_welch_df_adjusted")
         out["mean_difference_welch_p_value"] = p
         out["mean_difference_welch_p_value_adjusted"] = pa
         out["mean_difference_welch_flip"] = _flip(p, pa, alpha)
         out["mean_difference_reason"] = np.where(
-            np.isfinite(p), R.OK, cjoin(cols["mean_difference_welch_reason"])).astype(object)
+            np.isfinite(p), md_overflow, _join_rows([cjoin(cols["mean_difference_welch_reason"]),
+                                                     _codes(~bad_p, R.NUMERICAL_FAILURE), md_overflow])).astype(object)
         out["mean_difference_reason_adjusted"] = np.where(
-            np.isfinite(pa), R.OK, cjoin(cols["mean_difference_welch_reason_adjusted"])).astype(object)
+            np.isfinite(pa), md_overflow, _join_rows([cjoin(cols["mean_difference_welch_reason_adjusted"]),
+                                                      _codes(~bad_pa, R.NUMERICAL_FAILURE), md_overflow])).astype(object)
 
     # cases without contrasts: NaN, flips None, reason fields absent (NaN in a frame of dicts)
     for key, v in out.items():
@@ -1074,7 +1169,9 @@ def _trend_series(x_all, y_all, rows, start, length, case, direction, direction_
         sel = np.flatnonzero(length == n)
         idx = rows[start[sel][:, None] + np.arange(n)]
         X, Y = x_all[idx], y_all[idx]
-        regular = np.isfinite(X).all(axis=1) & np.isfinite(Y).all(axis=1) & (np.diff(X, axis=1) > 0).all(axis=1)
+        # strictly increasing also after the exact scaling (no two sessions merged by underflow)
+        Xs = scale_rows(X, binary_exponents(X))
+        regular = np.isfinite(X).all(axis=1) & np.isfinite(Y).all(axis=1) & (np.diff(Xs, axis=1) > 0).all(axis=1)
         fallback.extend(sel[~regular].tolist())
         sel, X, Y = sel[regular], X[regular], Y[regular]
         if sel.size == 0:
@@ -1100,32 +1197,45 @@ def _trend_series(x_all, y_all, rows, start, length, case, direction, direction_
 
 def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
     """OLS, Theil-Sen, Mann-Kendall and lag-1 Hamed-Rao for m series of length n >= 2 with
-    strictly increasing sessions and finite values (audit.trend.baseline_trend, element-wise)."""
+    strictly increasing sessions and finite values (audit.trend.baseline_trend, element-wise).
+    Sums of squares and slopes on X / 2**ex and Y / 2**ey row by row (exact), scaled back."""
     m = len(sel)
     I, J = np.tril_indices(n, -1)  # pairs i > j: later minus earlier
+    ex, ey = binary_exponents(X), binary_exponents(Y)
+    Xs, Ys = scale_rows(X, ex), scale_rows(Y, ey)
     with np.errstate(all="ignore"):
         # ---- OLS
-        xm = X.mean(axis=1)
-        xc = X - xm[:, None]
+        xm = Xs.mean(axis=1)
+        xc = Xs - xm[:, None]
         sxx = (xc * xc).sum(axis=1)
-        ym = Y.mean(axis=1)
-        yc = Y - ym[:, None]
-        slope = (xc * yc).sum(axis=1) / sxx
-        intercept = ym - slope * xm
+        ym = Ys.mean(axis=1)
+        yc = Ys - ym[:, None]
+        b = (xc * yc).sum(axis=1) / sxx
+        singular = ~(sxx > 0)
+        slope, bad_s = unscale_checked(b, ey - ex)
+        intercept, bad_i = unscale_checked(ym - b * xm, ey)
+        overflow = bad_s | bad_i
         df = float(n - 2)
-        resid = yc - slope[:, None] * xc
+        resid = yc - b[:, None] * xc
         ssr = (resid * resid).sum(axis=1)
         sst = (yc * yc).sum(axis=1)
         if n == 2:  # a line through two points: no residual degrees of freedom
             se, p = np.full(m, _NAN), np.full(m, _NAN)
-            ols_reason = np.full(m, R.NO_RESIDUAL_DF, dtype=object)
+            ols_reason = np.where(overflow, R.join(R.NO_RESIDUAL_DF, R.NUMERICAL_FAILURE), R.NO_RESIDUAL_DF)
         else:
             degenerate = (ssr <= 1e-20 * sst) | (sst == 0.0)
-            se = np.where(degenerate, 0.0, np.sqrt(ssr / df / sxx))
-            t = np.where(degenerate, _NAN, slope / se)
+            se_scaled = np.sqrt(ssr / df / sxx)
+            se, bad_se = unscale_checked(se_scaled, ey - ex)
+            se = np.where(degenerate, 0.0, se)
+            t = np.where(degenerate, _NAN, b / se_scaled)
             p = _t_two_sided(t, np.full(m, df), ~degenerate)
             ols_reason = np.where(degenerate, np.where(sst == 0.0, R.join(R.ZERO_RESIDUAL_VARIANCE, R.CONSTANT_SERIES),
                                                        R.ZERO_RESIDUAL_VARIANCE), R.OK).astype(object)
+            overflow = overflow | (bad_se & ~degenerate)
+            ols_reason = _join_rows([ols_reason, _codes(~overflow, R.NUMERICAL_FAILURE)])
+        ols_reason = np.where(singular, R.SINGULAR_DESIGN, ols_reason).astype(object)
+        for arr in (slope, intercept, se, p):
+            arr[singular] = _NAN
         res["ols_slope"][sel], res["ols_intercept"][sel] = slope, intercept
         res["ols_slope_se"][sel], res["ols_slope_p_value"][sel] = se, p
         res["ols_reason"][sel] = ols_reason
@@ -1136,14 +1246,16 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
         n1 = ((cnt - 1) / 2.0).sum(axis=1)  # sum over groups t(t-1)/2
         untied = (cnt == 1).all(axis=1)
 
-        # ---- Theil-Sen (median of pairwise slopes, order-statistic interval)
-        slopes = np.sort((Y[:, I] - Y[:, J]) / (X[:, I] - X[:, J]), axis=1)
+        # ---- Theil-Sen (median of pairwise slopes of the scaled series, order-statistic interval)
+        slopes = np.sort((Ys[:, I] - Ys[:, J]) / (Xs[:, I] - Xs[:, J]), axis=1)
         nt = I.size
         if nt % 2:
-            ts = slopes[:, nt // 2] / 1.0
+            tsb = slopes[:, nt // 2] / 1.0
         else:
-            ts = (slopes[:, nt // 2 - 1] + slopes[:, nt // 2]) / 2.0
-        ts_int = np.median(Y, axis=1) - ts * np.median(X, axis=1)
+            tsb = (slopes[:, nt // 2 - 1] + slopes[:, nt // 2]) / 2.0
+        ts, bad_ts = unscale_checked(tsb, ey - ex)
+        ts_int_scaled = np.median(Ys, axis=1) - tsb * np.median(Xs, axis=1)
+        ts_int, bad_int = unscale_checked(ts_int_scaled, ey)
         a = 1.0 - confidence if confidence > 0.5 else confidence
         zq = stats.norm.ppf(a / 2.0)
         sigsq = (n * (n - 1) * (2 * n + 5) - ties_mk) / 18.0
@@ -1151,14 +1263,18 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
         upper = np.minimum(np.round((nt - zq * sigma) / 2.0), nt - 1).astype(np.int64)
         lower = np.maximum(np.round((nt + zq * sigma) / 2.0) - 1, 0).astype(np.int64)
         rr = np.arange(m)
+        low, _ = unscale_checked(slopes[rr, lower], ey - ex)
+        high, _ = unscale_checked(slopes[rr, upper], ey - ex)
+        ts, ts_int, low, high = (np.where(np.isfinite(v), v, _NAN) for v in (ts, ts_int, low, high))
+        ts_bad = ~(np.isfinite(ts) & np.isfinite(ts_int) & np.isfinite(low) & np.isfinite(high))
         res["theil_sen_slope"][sel], res["theil_sen_intercept"][sel] = ts, ts_int
-        res["theil_sen_slope_low"][sel] = slopes[rr, lower]
-        res["theil_sen_slope_high"][sel] = slopes[rr, upper]
-        res["theil_sen_reason"][sel] = R.OK
+        res["theil_sen_slope_low"][sel] = low
+        res["theil_sen_slope_high"][sel] = high
+        ts_reason = _codes(~ts_bad, R.NUMERICAL_FAILURE)
+        res["theil_sen_reason"][sel] = ts_reason
 
-        # ---- Mann-Kendall
-        dy = Y[:, I] - Y[:, J]
-        s = (dy > 0).sum(axis=1).astype(float) - (dy < 0).sum(axis=1)
+        # ---- Mann-Kendall (signs by comparison: no overflow near the float limits)
+        s = (Y[:, I] > Y[:, J]).sum(axis=1).astype(float) - (Y[:, I] < Y[:, J]).sum(axis=1)
         var_s = (n * (n - 1) * (2 * n + 5) - ties_mk) / 18.0
         n0 = n * (n - 1) / 2.0
         denom_b = (n0 - n1) * (n0 - 0.0)
@@ -1185,17 +1301,19 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
             p_hr = np.full(m, _NAN)
             hr_reason = res["hamed_rao_reason"][sel]
         else:
-            p_hr, hr_reason = _hamed_rao_block(n, X, Y, ts, s, var_s, mk_reason, sel, res)
+            p_hr, hr_reason = _hamed_rao_block(n, Xs, Ys, tsb, s, var_s, mk_reason, sel, res)
 
     res["moves_in_therapeutic_direction"][sel] = _therapeutic(direction, ts, pz, alpha)
     res["moves_in_therapeutic_direction_hamed_rao_lag1"][sel] = _therapeutic(direction, ts, p_hr, alpha)
-    res["reason"][sel] = _join_rows([ols_reason, np.full(m, R.OK, dtype=object), mk_reason, hr_reason])
+    res["reason"][sel] = _join_rows([ols_reason, ts_reason, mk_reason, hr_reason])
 
 
-def _hamed_rao_block(n, X, Y, ts, s, var_s, mk_reason, sel, res):
-    """Lag-1 Hamed-Rao columns for series of length n >= 3 (audit.trend.mann_kendall_hamed_rao_lag1)."""
+def _hamed_rao_block(n, Xs, Ys, tsb, s, var_s, mk_reason, sel, res):
+    """Lag-1 Hamed-Rao columns for series of length n >= 3 (audit.trend.mann_kendall_hamed_rao_lag1);
+    Xs, Ys the scaled series and tsb their Theil-Sen slope (same ranks as the unscaled ones)."""
     with np.errstate(all="ignore"):
-        ranks = stats.rankdata(Y - ts[:, None] * X, axis=1)
+        slope_ok = np.isfinite(tsb)
+        ranks = stats.rankdata(np.where(slope_ok[:, None], Ys - tsb[:, None] * Xs, 0.0), axis=1)
         vc = ranks - ranks.mean(axis=1)[:, None]
         den = (vc * vc).sum(axis=1)
         r1 = np.where(den > 0, (vc[:, :-1] * vc[:, 1:]).sum(axis=1) / den, _NAN)
@@ -1208,8 +1326,13 @@ def _hamed_rao_block(n, X, Y, ts, s, var_s, mk_reason, sel, res):
         var_star = np.where(v_ok, var_s * factor, _NAN)
         z_hr = np.where(v_ok, _mk_z(s, var_star), _NAN)
         p_hr = np.where(v_ok, 2.0 * stats.norm.sf(np.abs(z_hr)), _NAN)
-        hr_reason = np.where(~r_ok, R.ZERO_VARIANCE, np.where(~f_ok, R.NUMERICAL_FAILURE, np.where(
-            ~v_ok, np.where(mk_reason == R.OK, R.ZERO_VARIANCE, mk_reason), R.OK))).astype(object)
+        r1 = np.where(slope_ok, r1, _NAN)
+        r_ok = r_ok & slope_ok
+        f_ok, v_ok = f_ok & slope_ok, v_ok & slope_ok
+        var_star, z_hr, p_hr = (np.where(slope_ok, v, _NAN) for v in (var_star, z_hr, p_hr))
+        hr_reason = np.where(~slope_ok, R.NUMERICAL_FAILURE, np.where(~r_ok, R.ZERO_VARIANCE, np.where(
+            ~f_ok, R.NUMERICAL_FAILURE, np.where(~v_ok, np.where(mk_reason == R.OK, R.ZERO_VARIANCE, mk_reason),
+                                                 R.OK)))).astype(object)
         res["hamed_rao_lag1_rank_autocorrelation"][sel] = r1
         res["hamed_rao_lag1_correction_factor"][sel] = np.where(r_ok, factor, _NAN)
         res["mann_kendall_hamed_rao_lag1_var_s"][sel] = var_star

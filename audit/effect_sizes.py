@@ -16,6 +16,14 @@ phase's size n is replaced by the effective size n_eff = n (1 - rho) / (1 + rho)
 shrink variances below the independence ones, and lag-1 estimates from short series are biased
 downwards, so the adjustment is only ever conservative. rho = 0 reproduces the independence
 p-values exactly.
+
+Values near the float limits: each phase is divided by a power of two (the binary exponent of its
+largest |value|, ``audit.regression.binary_exponents``; exact) before means and sums of squares;
+differences and pooled variances of a contrast are formed in a common power-of-two frame and
+ratios (SMD, t statistics, LRR terms) are taken between scaled quantities. For ordinary data this
+gives the same bits as the unscaled arithmetic. A reported quantity beyond the largest double
+(an SD or mean difference of values near 1.8e308, a t statistic or SMD too large to represent) is
+NaN and the reason of its result gets ``numerical_failure``; scale-free results are still given.
 """
 
 from __future__ import annotations
@@ -27,7 +35,8 @@ import pandas as pd
 from scipy import optimize, special, stats
 
 from audit import reasons as R
-from audit.trend import normalize_direction
+from audit.regression import scale_rows
+from audit.trend import normalize_direction, scaled_ratio, scaling_exponents, unscale_checked, window_exponents
 
 __all__ = [
     "RATIO_SCALES",
@@ -123,6 +132,38 @@ def _rho_reason(rho_used: float) -> str:
 
 def _sd(x: np.ndarray) -> float:
     return float(np.std(x, ddof=1)) if x.size >= 2 else _NAN
+
+
+def _scaled_moments(x: np.ndarray) -> tuple[int, float, float]:
+    """(e, mean, SD) of x * 2**-e, e the binary exponent of max |x| (``scaling_exponents``: 0 for
+    ordinary magnitudes; exact scaling): the mean and SD of x are these times 2**e, and the sums of
+    squares cannot overflow."""
+    e = int(scaling_exponents(x))
+    xs = scale_rows(x, e)
+    return e, (float(xs.mean()) if xs.size else _NAN), _sd(xs)
+
+
+_NO_EXPONENT = -(1 << 30)
+
+
+def sd_frame(sd_a, e_a, sd_b, e_b, fallback):
+    """Binary exponent F of the larger of two SDs given as sd_a * 2**e_a and sd_b * 2**e_b (F =
+    fallback where neither is positive; 0 within +-SAFE_EXPONENT); works element-wise on arrays. Pooled variances formed in
+    units of 2**(2F) neither overflow nor lose the smaller SD to underflow."""
+    def exponent(sd, e):
+        sd = np.asarray(sd, dtype=float)
+        pos = sd > 0
+        return np.where(pos, np.asarray(e) + np.frexp(np.where(pos, sd, 1.0))[1], _NO_EXPONENT)
+
+    f = np.maximum(exponent(sd_a, e_a), exponent(sd_b, e_b))
+    return window_exponents(np.where(f == _NO_EXPONENT, fallback, f))
+
+
+def _scaled_mean(v: np.ndarray) -> tuple[float, bool]:
+    """Mean of the finite non-empty array v via an exact power-of-two scaling; (NaN, True) if it
+    is not representable."""
+    e = scaling_exponents(v)
+    return unscale_checked(float(scale_rows(v, e).mean()), e)
 
 
 def _two_sided_normal_p(z: float) -> float:
@@ -242,8 +283,9 @@ class NAP:
 
 
 def _pair_counts(ao: np.ndarray, bo: np.ndarray) -> tuple[int, int, int]:
-    d = bo[:, None] - ao[None, :]
-    return int(np.sum(d > 0)), int(np.sum(d < 0)), int(np.sum(d == 0))
+    """(#b > a, #b < a, #b == a) over all pairs (compared, not subtracted: no overflow)."""
+    bb, aa = bo[:, None], ao[None, :]
+    return int(np.sum(bb > aa)), int(np.sum(bb < aa)), int(np.sum(bb == aa))
 
 
 def nap(baseline, treatment, desired_direction: str | None = None, confidence: float = 0.95) -> NAP:
@@ -437,7 +479,8 @@ def tau_u(
     ao, bo = _orient(a, direction), _orient(b, direction)
     pos, neg, _ = _pair_counts(ao, bo)
     s_ab = float(pos - neg)
-    s_trend = float(np.triu(np.sign(ao[None, :] - ao[:, None]), 1).sum())
+    later, earlier = ao[None, :], ao[:, None]
+    s_trend = float(np.triu((later > earlier).astype(float) - (later < earlier), 1).sum())
     s = s_ab - s_trend
     npairs = na * nb
     var_s = _mw_var_s(na, nb, float(na), float(nb), 1.0)
@@ -515,9 +558,17 @@ def log_response_ratio(
     a, b, reason = _prepare(baseline, treatment)
     rho_used = bound_rho(rho)
     na, nb = a.size, b.size
-    ma = float(a.mean()) if na and not reason else _NAN
-    mb = float(b.mean()) if nb and not reason else _NAN
-    sa, sb = (_sd(a), _sd(b)) if not reason else (_NAN, _NAN)
+    if reason:
+        ea = eb = 0
+        ma_s = mb_s = sa_s = sb_s = _NAN
+    else:
+        ea, ma_s, sa_s = _scaled_moments(a)
+        eb, mb_s, sb_s = _scaled_moments(b)
+    ma, bad_ma = unscale_checked(ma_s, ea)
+    mb, bad_mb = unscale_checked(mb_s, eb)
+    sa, bad_sa = unscale_checked(sa_s, ea)
+    sb, bad_sb = unscale_checked(sb_s, eb)
+    overflow = R.NUMERICAL_FAILURE if (bad_ma or bad_mb or bad_sa or bad_sb) else R.OK
     na_e, nb_e = effective_sample_size(na, rho_used), effective_sample_size(nb, rho_used)
 
     def out(lrr=_NAN, lbc=_NAN, var=_NAN, var_adj=_NAN, code=R.OK, code_adj=None):
@@ -537,21 +588,30 @@ def log_response_ratio(
                                 confidence, direction, assumed, code, code_adj)
 
     if scale not in RATIO_SCALES:
-        return out(code=R.join(R.NOT_RATIO_SCALE, reason))
+        return out(code=R.join(R.NOT_RATIO_SCALE, reason, overflow))
     if reason:
         return out(code=reason)
+    if bad_ma or bad_mb:
+        return out(code=R.NUMERICAL_FAILURE)
     if not (ma > 0 and mb > 0):
-        return out(code=R.NONPOSITIVE_MEAN)
+        return out(code=R.join(R.NONPOSITIVE_MEAN, overflow))
     lrr = float(np.log(mb) - np.log(ma))
     if na < 2 or nb < 2:
-        return out(lrr=lrr, code=R.TOO_FEW_POINTS)
-    lbc = float(np.log(mb) + sb**2 / (2 * nb * mb**2) - np.log(ma) - sa**2 / (2 * na * ma**2))
-    var = float(sa**2 / (na * ma**2) + sb**2 / (nb * mb**2))
-    code = R.OK if var > 0 else R.ZERO_VARIANCE
+        return out(lrr=lrr, code=R.join(R.TOO_FEW_POINTS, overflow))
+    # SD/mean ratios within a phase are scale-free: taken on the scaled values
+    with np.errstate(over="ignore", divide="ignore", invalid="ignore", under="ignore"):
+        lbc = float(np.log(mb) + sb_s**2 / (2 * nb * mb_s**2) - np.log(ma) - sa_s**2 / (2 * na * ma_s**2))
+        var = float(sa_s**2 / (na * ma_s**2) + sb_s**2 / (nb * mb_s**2))
+    if not (np.isfinite(lbc) and np.isfinite(var)):
+        return out(lrr=lrr, code=R.NUMERICAL_FAILURE)
+    code = R.join(R.OK if var > 0 else R.ZERO_VARIANCE, overflow)
     code_adj = _rho_reason(rho_used) or code
     var_adj = _NAN
     if np.isfinite(rho_used):
-        var_adj = float(sa**2 / (na_e * ma**2) + sb**2 / (nb_e * mb**2))
+        with np.errstate(over="ignore", divide="ignore", invalid="ignore", under="ignore"):
+            var_adj = float(sa_s**2 / (na_e * ma_s**2) + sb_s**2 / (nb_e * mb_s**2))
+        if not np.isfinite(var_adj):
+            var_adj, code_adj = _NAN, R.join(code_adj, R.NUMERICAL_FAILURE)
     return out(lrr, lbc, var, var_adj, code, code_adj)
 
 
@@ -590,41 +650,71 @@ class StandardizedMeanDifference:
 def standardized_mean_difference(
     baseline, treatment, desired_direction: str | None = None
 ) -> StandardizedMeanDifference:
-    """SMD with the baseline SD (Busk & Serlin 1992) and with the pooled SD, plus Hedges' J."""
+    """SMD with the baseline SD (Busk & Serlin 1992) and with the pooled SD, plus Hedges' J.
+
+    The SMDs are ratios of scaled quantities (finite for values near the float limits); an SD or
+    mean difference beyond the largest double is NaN with numerical_failure in both reasons.
+    """
     direction, assumed = resolve_direction(desired_direction)
     a, b, reason = _prepare(baseline, treatment)
     if reason:
         return StandardizedMeanDifference(_NAN, _NAN, _NAN, _NAN, _NAN, _NAN, _NAN, direction, assumed,
                                           reason, reason)
     sign = -1.0 if direction == "decrease" else 1.0
-    md = sign * float(b.mean() - a.mean())
     na, nb = a.size, b.size
-    sa = _sd(a)
+    c = _contrast_scales(a, b, sign)
+    md, sa = c["md"], c["sa"]
+    df_p = na + nb - 2
+    sp, bad_sp = unscale_checked(c["sp"], c["e_sd"])
+    md_code = R.NUMERICAL_FAILURE if c["bad_md"] else R.OK
+    if na < 2:
+        smd_b, smd_bh, reason_b = _NAN, _NAN, R.TOO_FEW_POINTS
+    elif not c["sa_scaled"] > 0:
+        smd_b, smd_bh, reason_b = _NAN, _NAN, R.ZERO_VARIANCE
+    else:
+        smd_b, bad = scaled_ratio(c["md_scaled"], c["sa_scaled"], c["e_md"] - c["e_a"])
+        j = hedges_correction(na - 1)
+        smd_bh = smd_b * j
+        reason_b = R.NUMERICAL_FAILURE if bad else (R.OK if np.isfinite(j) else R.TOO_FEW_POINTS)
+    if df_p < 1:
+        smd_p, smd_ph, reason_p = _NAN, _NAN, R.TOO_FEW_POINTS
+    elif not c["sp"] > 0:
+        smd_p, smd_ph, reason_p = _NAN, _NAN, R.ZERO_VARIANCE
+    else:
+        smd_p, bad = scaled_ratio(c["md_scaled"], c["sp"], c["e_md"] - c["e_sd"])
+        j = hedges_correction(df_p)
+        smd_ph = smd_p * j
+        reason_p = R.NUMERICAL_FAILURE if bad else (R.OK if np.isfinite(j) else R.TOO_FEW_POINTS)
+    reason_b = R.join(reason_b, md_code, R.NUMERICAL_FAILURE if c["bad_sa"] else R.OK)
+    reason_p = R.join(reason_p, md_code, R.NUMERICAL_FAILURE if bad_sp else R.OK)
+    return StandardizedMeanDifference(md, sa, sp, smd_b, smd_bh, smd_p, smd_ph, direction, assumed,
+                                      reason_b, reason_p)
+
+
+def _contrast_scales(a: np.ndarray, b: np.ndarray, sign: float) -> dict:
+    """Means, SDs and the pooled SD of a contrast in exact power-of-two frames.
+
+    e_a, e_b: binary exponents of the phases; md_scaled = sign (mB - mA) / 2**e_md with e_md =
+    max(e_a, e_b); sa_scaled = sA / 2**e_a; va, vb = sA^2, sB^2 and sp = pooled SD, all in units
+    of 2**e_sd (``sd_frame``); md and sa unscaled (NaN when not representable, flagged bad_*).
+    """
+    na, nb = a.size, b.size
+    ea, ma_s, sa_s = _scaled_moments(a)
+    eb, mb_s, sb_s = _scaled_moments(b)
+    e_md = max(ea, eb)
+    md_s = sign * float(np.ldexp(mb_s, eb - e_md) - np.ldexp(ma_s, ea - e_md))
+    md, bad_md = unscale_checked(md_s, e_md)
+    sa, bad_sa = unscale_checked(sa_s, ea)
+    e_sd = sd_frame(sa_s, ea, sb_s, eb, e_md)
+    va = float(np.ldexp(sa_s, ea - e_sd)) ** 2
+    vb = float(np.ldexp(sb_s, eb - e_sd)) ** 2
     df_p = na + nb - 2
     sp = _NAN
     if df_p >= 1:
-        ss = (na - 1) * (sa**2 if na > 1 else 0.0) + (nb - 1) * (_sd(b) ** 2 if nb > 1 else 0.0)
+        ss = (na - 1) * (va if na > 1 else 0.0) + (nb - 1) * (vb if nb > 1 else 0.0)
         sp = float(np.sqrt(ss / df_p))
-    if na < 2:
-        smd_b, smd_bh, reason_b = _NAN, _NAN, R.TOO_FEW_POINTS
-    elif not sa > 0:
-        smd_b, smd_bh, reason_b = _NAN, _NAN, R.ZERO_VARIANCE
-    else:
-        smd_b = md / sa
-        j = hedges_correction(na - 1)
-        smd_bh = smd_b * j
-        reason_b = R.OK if np.isfinite(j) else R.TOO_FEW_POINTS
-    if df_p < 1:
-        smd_p, smd_ph, reason_p = _NAN, _NAN, R.TOO_FEW_POINTS
-    elif not sp > 0:
-        smd_p, smd_ph, reason_p = _NAN, _NAN, R.ZERO_VARIANCE
-    else:
-        smd_p = md / sp
-        j = hedges_correction(df_p)
-        smd_ph = smd_p * j
-        reason_p = R.OK if np.isfinite(j) else R.TOO_FEW_POINTS
-    return StandardizedMeanDifference(md, sa, sp, smd_b, smd_bh, smd_p, smd_ph, direction, assumed,
-                                      reason_b, reason_p)
+    return {"e_a": ea, "e_md": e_md, "e_sd": e_sd, "md_scaled": md_s, "md": md, "bad_md": bad_md,
+            "sa_scaled": sa_s, "sa": sa, "bad_sa": bad_sa, "va": va, "vb": vb, "sp": sp}
 
 
 # ----------------------------------------------------------------------------------------------
@@ -665,7 +755,10 @@ class MeanDifferenceTest:
     pooled_reason_adjusted: str
 
 
-def _welch(md: float, va: float, vb: float, na: float, nb: float) -> tuple[float, float, float, float, str]:
+def _welch(md: float, va: float, vb: float, na: float, nb: float, e_md: int = 0, e_v: int = 0,
+           ) -> tuple[float, float, float, float, str]:
+    """Welch t-test pieces (se, df, t, p, reason); md in units of 2**e_md, va and vb in units of
+    2**(2 e_v) (exact scalings; se returned unscaled, NaN with numerical_failure if too large)."""
     if not (na > 1 and nb > 1) or not (np.isfinite(va) and np.isfinite(vb)):
         return _NAN, _NAN, _NAN, _NAN, R.TOO_FEW_POINTS
     qa, qb = va / na, vb / nb
@@ -673,19 +766,29 @@ def _welch(md: float, va: float, vb: float, na: float, nb: float) -> tuple[float
     if not se2 > 0:
         return 0.0, _NAN, _NAN, _NAN, R.ZERO_VARIANCE
     df = se2**2 / (qa**2 / (na - 1) + qb**2 / (nb - 1))
-    t = md / np.sqrt(se2)
-    return float(np.sqrt(se2)), float(df), float(t), float(2 * stats.t.sf(abs(t), df)), R.OK
+    se, bad_se = unscale_checked(np.sqrt(se2), e_v)
+    t, bad_t = scaled_ratio(md, np.sqrt(se2), e_md - e_v)
+    if bad_t:
+        return se, float(df), _NAN, _NAN, R.NUMERICAL_FAILURE
+    code = R.NUMERICAL_FAILURE if bad_se else R.OK
+    return se, float(df), float(t), float(2 * stats.t.sf(abs(t), df)), code
 
 
-def _pooled(md: float, sp: float, na: float, nb: float) -> tuple[float, float, float, float, str]:
+def _pooled(md: float, sp: float, na: float, nb: float, e_md: int = 0, e_v: int = 0,
+            ) -> tuple[float, float, float, float, str]:
+    """Pooled-variance t-test pieces (se, df, t, p, reason); md and sp in units of 2**e_md and 2**e_v."""
     df = na + nb - 2
     if not (np.isfinite(sp) and df > 0):
         return _NAN, _NAN, _NAN, _NAN, R.TOO_FEW_POINTS
     if not sp > 0:
         return 0.0, float(df), _NAN, _NAN, R.ZERO_VARIANCE
-    se = sp * np.sqrt(1.0 / na + 1.0 / nb)
-    t = md / se
-    return float(se), float(df), float(t), float(2 * stats.t.sf(abs(t), df)), R.OK
+    se_scaled = sp * np.sqrt(1.0 / na + 1.0 / nb)
+    se, bad_se = unscale_checked(se_scaled, e_v)
+    t, bad_t = scaled_ratio(md, se_scaled, e_md - e_v)
+    if bad_t:
+        return se, float(df), _NAN, _NAN, R.NUMERICAL_FAILURE
+    code = R.NUMERICAL_FAILURE if bad_se else R.OK
+    return se, float(df), float(t), float(2 * stats.t.sf(abs(t), df)), code
 
 
 def mean_difference_test(
@@ -710,22 +813,20 @@ def mean_difference_test(
         return MeanDifferenceTest(_NAN, rho_used, na_e, nb_e, *n4, *n4[:3], None, *n4, *n4[:3], None,
                                   alpha, direction, assumed, reason, reason, reason, reason)
     sign = -1.0 if direction == "decrease" else 1.0
-    md = sign * float(b.mean() - a.mean())
-    va, vb = _sd(a) ** 2, _sd(b) ** 2
-    df_p = na + nb - 2
-    sp = _NAN
-    if df_p >= 1:
-        ss = (na - 1) * (va if na > 1 else 0.0) + (nb - 1) * (vb if nb > 1 else 0.0)
-        sp = float(np.sqrt(ss / df_p))
-    w = _welch(md, va, vb, float(na), float(nb))
-    pl = _pooled(md, sp, float(na), float(nb))
+    c = _contrast_scales(a, b, sign)
+    md, md_s, e_md, e_sd = c["md"], c["md_scaled"], c["e_md"], c["e_sd"]
+    va, vb, sp = c["va"], c["vb"], c["sp"]
+    w = _welch(md_s, va, vb, float(na), float(nb), e_md, e_sd)
+    pl = _pooled(md_s, sp, float(na), float(nb), e_md, e_sd)
     rr = _rho_reason(rho_used)
     if rr:
         wa = (_NAN, _NAN, _NAN, _NAN, rr)
         pa = (_NAN, _NAN, _NAN, _NAN, rr)
     else:
-        wa = _welch(md, va, vb, na_e, nb_e)
-        pa = _pooled(md, sp, na_e, nb_e)
+        wa = _welch(md_s, va, vb, na_e, nb_e, e_md, e_sd)
+        pa = _pooled(md_s, sp, na_e, nb_e, e_md, e_sd)
+    if c["bad_md"]:  # the mean difference itself is not representable
+        w, wa, pl, pa = ((*t[:4], R.join(t[4], R.NUMERICAL_FAILURE)) for t in (w, wa, pl, pa))
     return MeanDifferenceTest(
         md, rho_used, na_e, nb_e,
         w[0], w[1], w[2], w[3], wa[0], wa[1], wa[3], _flip(w[3], wa[3], alpha),
@@ -856,6 +957,7 @@ def phase_mean_residual_lag1(outcome, phase_index, within_groups_only: bool = Tr
     phase = np.asarray(phase_index).ravel()
     if not np.all(np.isfinite(y)):
         return _NAN, R.NON_FINITE_INPUT
+    y = scale_rows(y, scaling_exponents(y))  # r1 is scale-free: exact scaling, no overflow in e'e
     e = y.copy()
     for p in pd.unique(phase):
         m = phase == p
@@ -1032,36 +1134,47 @@ def _aggregate(results: list[ContrastEffectSizes], alpha: float) -> dict:
         out.update(lrr_improvement=_NAN, lrr_se=_NAN, lrr_p_value=_NAN, lrr_p_value_adjusted=_NAN,
                    lrr_flip=None, lrr_reason=R.join(*[r.lrr.reason for r in results]))
 
-    # SMD: simple means over contrasts where defined
+    # SMD: simple means over contrasts where defined (means via an exact power-of-two scaling)
+    smd_overflow = False
     for key in ("smd_baseline_sd", "smd_baseline_sd_hedges", "smd_pooled_sd", "smd_pooled_sd_hedges"):
         v = np.array([getattr(r.smd, key) for r in results], float)
-        out[key] = float(v[np.isfinite(v)].mean()) if np.isfinite(v).any() else _NAN
-    out["smd_reason"] = R.join(*[r.smd.reason_baseline_sd for r in results])
+        out[key], bad = _scaled_mean(v[np.isfinite(v)]) if np.isfinite(v).any() else (_NAN, False)
+        smd_overflow |= bad
+    out["smd_reason"] = R.join(*[r.smd.reason_baseline_sd for r in results],
+                               R.NUMERICAL_FAILURE if smd_overflow else R.OK)
 
     # mean difference: simple mean, Welch-Satterthwaite over contrasts
     md = np.array([r.mean_difference.mean_difference for r in results], float)
-    out["mean_difference"] = float(md[np.isfinite(md)].mean()) if np.isfinite(md).any() else _NAN
+    out["mean_difference"], md_overflow = _scaled_mean(md[np.isfinite(md)]) if np.isfinite(md).any() else (_NAN, False)
 
-    def combined_welch(se_field: str, df_field: str) -> float:
+    def combined_welch(se_field: str, df_field: str) -> tuple[float, bool]:
+        """(p, not representable); standard errors scaled by 2**-g (g: binary exponent of the
+        largest), exact, so their squares and fourth powers neither overflow nor underflow."""
         se_c = np.array([getattr(r.mean_difference, se_field) for r in results], float)
         df_c = np.array([getattr(r.mean_difference, df_field) for r in results], float)
         okc = np.isfinite(md) & np.isfinite(se_c) & np.isfinite(df_c) & (se_c > 0)
         if not okc.any():
-            return _NAN
+            return _NAN, False
         k = okc.sum()
-        d = md[okc].mean()
-        var_c = se_c[okc] ** 2
+        d, bad_d = _scaled_mean(md[okc])
+        g = scaling_exponents(se_c[okc])
+        var_c = scale_rows(se_c[okc], g) ** 2
         se_tot = np.sqrt(var_c.sum()) / k
         df_tot = var_c.sum() ** 2 / np.sum(var_c**2 / df_c[okc])
-        return float(2 * stats.t.sf(abs(d) / se_tot, df_tot))
+        t, bad_t = scaled_ratio(abs(d), se_tot, -g)
+        if not np.isfinite(t):
+            return _NAN, bool(bad_d or bad_t)
+        return float(2 * stats.t.sf(t, df_tot)), False
 
-    p = combined_welch("welch_se", "welch_df")
-    pa = combined_welch("welch_se_adjusted", "welch_df_adjusted")
+    p, bad_p = combined_welch("welch_se", "welch_df")
+    pa, bad_pa = combined_welch("welch_se_adjusted", "welch_df_adjusted")
     out["mean_difference_welch_p_value"] = p
     out["mean_difference_welch_p_value_adjusted"] = pa
     out["mean_difference_welch_flip"] = _flip(p, pa, alpha)
-    out["mean_difference_reason"] = R.OK if np.isfinite(p) else R.join(
-        *[r.mean_difference.welch_reason for r in results])
-    out["mean_difference_reason_adjusted"] = R.OK if np.isfinite(pa) else R.join(
-        *[r.mean_difference.welch_reason_adjusted for r in results])
+    overflow = R.NUMERICAL_FAILURE if md_overflow else R.OK
+    out["mean_difference_reason"] = R.join(overflow) if np.isfinite(p) else R.join(
+        *[r.mean_difference.welch_reason for r in results], R.NUMERICAL_FAILURE if bad_p else R.OK, overflow)
+    out["mean_difference_reason_adjusted"] = R.join(overflow) if np.isfinite(pa) else R.join(
+        *[r.mean_difference.welch_reason_adjusted for r in results], R.NUMERICAL_FAILURE if bad_pa else R.OK,
+        overflow)
     return out

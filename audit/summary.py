@@ -14,8 +14,10 @@ Each case's coefficient is therefore estimated by inverting the exact expectatio
     rho_i = m_i^{-1}(r1_i),   m_i(rho) = E_rho[e'Le / e'e],  e = M x,  x ~ N(0, R(rho)),
 computed for the case's own design by the integral of Sawa (1978) / Magnus (1986),
     E[z'Az / z'Bz] = int_0^inf prod_j (1 + 2 t l_j)^(-1/2) sum_j a_jj / (1 + 2 t l_j) dt
-(l_j eigenvalues of B, a_jj the diagonal of A in B's eigenbasis), on a grid of rho in
-[-0.95, 0.95] (a mean-bias correction in the spirit of Andrews 1993, who used the median).
+(l_j eigenvalues of B, a_jj the diagonal of A in B's eigenbasis), solved for rho in
+[-0.95, 0.95] (a mean-bias correction in the spirit of Andrews 1993, who used the median);
+see ``audit.r1_calibration``.  The design-dependent per-case parts (this inversion, DW power,
+GLS at given coefficients) run over stacks of cases of equal (n, k): ``audit.summary_stacks``.
 Without observations the first-order version rho_i = r1_corrected_i / ((n-k) V0_i) is used.
 Within-case sampling variance: the exact null variance of r1 carried to the rho scale by the
 exact slope at 0, v_i = V0_i / ((n-k) V0_i)^2 = 1 / ((n-k)^2 V0_i); it depends only on the
@@ -30,7 +32,6 @@ Proportions: Wilson (1927) score intervals.
 
 from __future__ import annotations
 
-import functools
 import json
 import math
 import sys
@@ -39,10 +40,12 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 from audit import reasons as R
-from audit.autocorrelation import lag_matrix
+from audit.r1_calibration import (AR1FromResidualLag1, ar1_from_residual_lag1,  # noqa: F401 (re-exported)
+                                  residual_lag1_mean_under_ar1)
+from audit.summary_stacks import ReviewStacks, ar1_from_r1, dw_power_at, gls_at
 from audit.design import ALTERNATING, CaseDesign, case_design
 
 __all__ = [
@@ -66,7 +69,6 @@ RHO_BOUND = 0.95
 SENSITIVITY_RHOS = (0.0, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6)
 DEMONSTRATIONS_NEEDED = 3  # common three-demonstrations standard (common practice)
 GROUPINGS = ("study", "design", "outcome_scale")
-_CALIBRATION_GRID = np.round(np.linspace(-RHO_BOUND, RHO_BOUND, 77), 6)  # step 0.025
 
 SUMMARY_TABLES = (
     "summary_overall",
@@ -132,7 +134,7 @@ def random_effects_dersimonian_laird(effects, variances, alpha: float = 0.05) ->
     if k == 0:
         return RandomEffectsPooled(0, nan, nan, nan, nan, nan, nan, nan, nan, nan, 0, nan, nan,
                                    reason=R.TOO_FEW_POINTS)
-    z = float(stats.norm.ppf(1.0 - alpha / 2.0))
+    z = float(special.ndtri(1.0 - alpha / 2.0))  # stats.norm.ppf without its per-call overhead
     w = 1.0 / v
     fixed = float(np.sum(w * y) / np.sum(w))
     if k == 1:
@@ -146,9 +148,9 @@ def random_effects_dersimonian_laird(effects, variances, alpha: float = 0.05) ->
     mu = float(np.sum(ws * y) / np.sum(ws))
     se = float(1.0 / np.sqrt(np.sum(ws)))
     i2 = max(0.0, (q - (k - 1)) / q) if q > 0 else 0.0
-    q_p = float(stats.chi2.sf(q, k - 1))
+    q_p = float(special.chdtrc(k - 1, q))  # stats.chi2.sf
     if k >= 3:
-        t = float(stats.t.ppf(1.0 - alpha / 2.0, k - 2))
+        t = float(special.stdtrit(k - 2, 1.0 - alpha / 2.0))  # stats.t.ppf
         half = t * math.sqrt(tau2 + se**2)
         pi = (mu - half, mu + half)
     else:
@@ -168,7 +170,7 @@ def wilson_interval(successes, trials, alpha: float = 0.05) -> tuple[np.ndarray,
     """
     x = np.asarray(successes, dtype=float)
     n = np.asarray(trials, dtype=float)
-    z = stats.norm.ppf(1.0 - alpha / 2.0)
+    z = special.ndtri(1.0 - alpha / 2.0)  # stats.norm.ppf
     with np.errstate(divide="ignore", invalid="ignore"):
         p = x / n
         denom = 1.0 + z**2 / n
@@ -196,121 +198,6 @@ def empirical_bayes_shrinkage(raw, variance, mean: float, tau2: float, bound: fl
         w = np.where(have, np.where(t2 + v > 0, t2 / (t2 + v), 1.0), 0.0)
     shrunk = float(mean) + w * (np.where(have, y, float(mean)) - float(mean))
     return pd.DataFrame({"raw": y, "weight": w, "shrunken": np.clip(shrunk, -bound, bound)})
-
-
-# ----------------------------------------------------------------------------- AR(1) from r1
-
-
-def _residual_basis(X: np.ndarray) -> np.ndarray:
-    """Orthonormal basis N (n x (n-k)) of the residual space of X."""
-    n, k = X.shape
-    q = np.linalg.qr(X, mode="complete")[0]
-    return q[:, k:]
-
-
-@functools.lru_cache(maxsize=4)
-def _gauss_legendre_unit(nodes: int) -> tuple[np.ndarray, np.ndarray]:
-    """Gauss-Legendre nodes and weights on (0, 1) (cached: leggauss solves an eigenproblem)."""
-    x, w = np.polynomial.legendre.leggauss(nodes)
-    return (x + 1.0) / 2.0, w / 2.0
-
-
-def residual_lag1_mean_under_ar1(X, rhos) -> np.ndarray:
-    """Exact E_rho[r1] of OLS residuals on X under stationary AR(1) errors, for each rho.
-
-    With N a basis of the residual space, w = N'x ~ N(0, G), G = N'R(rho)N, and
-    r1 = w'Aw / w'w with A = N'LN.  Sawa (1978) / Magnus (1986):
-    E = int_0^inf prod_j (1+2t g_j)^-1/2 sum_j g_j (q_j'Aq_j) / (1+2t g_j) dt, with (g_j, q_j)
-    the eigenpairs of G; Gauss-Legendre in s with t = s/(1-s)/(2 g_geo).
-    At rho = 0 this is tr(ML)/(n-k) (Pitman-Koopmans).
-    """
-    X = np.asarray(X, dtype=float)
-    if X.ndim == 1:
-        X = X[:, None]
-    n, k = X.shape
-    r = np.atleast_1d(np.asarray(rhos, dtype=float))
-    out = np.full(r.shape, np.nan)
-    use = np.isfinite(r) & (np.abs(r) < 1)
-    if n - k < 1 or not use.any() or np.linalg.matrix_rank(X) < k:
-        return out
-    N = _residual_basis(X)
-    A = N.T @ lag_matrix(n) @ N
-    lags = np.abs(np.subtract.outer(np.arange(n), np.arange(n)))
-    corr = r[use][:, None, None] ** lags[None]
-    G = N.T[None] @ corr @ N[None]
-    g, Q = np.linalg.eigh(0.5 * (G + np.swapaxes(G, 1, 2)))
-    g = np.clip(g, 1e-300, None)
-    a = g * np.sum(Q * (A[None] @ Q), axis=1)  # g_j * q_j' A q_j
-    s, wq = _gauss_legendre_unit(128 if n - k <= 100 else 256)
-    scale = np.exp(np.mean(np.log(g), axis=1))
-    t = (s / (1.0 - s))[None, :] / (2.0 * scale[:, None])
-    jac = (1.0 / (1.0 - s) ** 2)[None, :] / (2.0 * scale[:, None])
-    D = 1.0 + 2.0 * t[:, :, None] * g[:, None, :]
-    f = np.exp(-0.5 * np.sum(np.log(D), axis=2)) * np.sum(a[:, None, :] / D, axis=2) * jac
-    out[use] = f @ wq
-    return out
-
-
-@dataclass(frozen=True)
-class AR1FromResidualLag1:
-    """AR(1) coefficient from the residual lag-1 autocorrelation by inverting E_rho[r1]."""
-
-    rho: np.ndarray
-    variance: np.ndarray
-    at_bound: np.ndarray
-    method: str
-    reason: np.ndarray
-
-
-def ar1_from_residual_lag1(r1, X=None, *, null_mean=None, null_variance=None, n_obs=None, n_params=None,
-                           grid=_CALIBRATION_GRID) -> AR1FromResidualLag1:
-    """AR(1) coefficient(s) from residual r1 of cases sharing design X (exact mean inversion).
-
-    With X: rho = m^{-1}(r1) on a grid (linear interpolation), clipped to [-0.95, 0.95].
-    Without X (first order): rho = (r1 - E0) / ((n-k) V0) from the null moments given.
-    Variance (both): 1 / ((n-k)^2 V0), the exact null variance carried by the exact slope at 0.
-    """
-    r1 = np.atleast_1d(np.asarray(r1, dtype=float))
-    m = r1.shape[0]
-    reason = np.full(m, R.OK, dtype=object)
-    if X is not None:
-        from audit.autocorrelation import residual_lag1_null_moments
-
-        X = np.asarray(X, dtype=float)
-        n, k = X.shape
-        mu0, v0 = residual_lag1_null_moments(X)
-        curve = residual_lag1_mean_under_ar1(X, grid)
-        method = "exact mean inversion"
-        if not (np.all(np.isfinite(curve)) and np.all(np.diff(curve) > 0)):
-            curve = None
-            reason[:] = R.NUMERICAL_FAILURE
-        df = np.full(m, float(n - k))
-        v0 = np.full(m, v0)
-        mu0 = np.full(m, mu0)
-    else:
-        curve = None
-        method = "first order"
-        df = np.asarray(n_obs, dtype=float) - np.asarray(n_params, dtype=float)
-        df = np.broadcast_to(df, (m,)).astype(float)
-        v0 = np.broadcast_to(np.asarray(null_variance, dtype=float), (m,)).astype(float)
-        mu0 = np.broadcast_to(np.asarray(null_mean, dtype=float), (m,)).astype(float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        slope = df * v0
-        variance = np.where(slope > 0, 1.0 / (df * slope), np.nan)
-        if curve is not None:
-            rho = np.interp(r1, curve, grid)
-            at_bound = np.isfinite(r1) & ((r1 >= curve[-1]) | (r1 <= curve[0]))
-        else:
-            raw = (r1 - mu0) / slope
-            rho = np.clip(raw, -RHO_BOUND, RHO_BOUND)
-            at_bound = np.isfinite(raw) & (np.abs(raw) >= RHO_BOUND)
-    bad = ~np.isfinite(r1)
-    reason[bad & (reason == R.OK)] = R.NON_FINITE_INPUT
-    novar = ~(slope > 0)
-    reason[novar & (reason == R.OK)] = R.ZERO_VARIANCE
-    rho = np.where(bad | novar, np.nan, rho)
-    variance = np.where(bad | novar, np.nan, variance)
-    return AR1FromResidualLag1(rho, variance, at_bound & ~bad, method, reason)
 
 
 # ----------------------------------------------------------------------------- designs
@@ -356,65 +243,41 @@ def case_designs(observations: pd.DataFrame) -> DesignGroups:
     return DesignGroups(designs, members, outcomes, sessions, signature_of)
 
 
-def make_gls_at_rho(observations: pd.DataFrame | DesignGroups, alpha: float = 0.05) -> DiagnoseAtRho:
+def make_gls_at_rho(observations: pd.DataFrame | ReviewStacks, alpha: float = 0.05) -> DiagnoseAtRho:
     """A fast ``diagnose_at_rho``: the GLS AR(1) effect test of every case at a supplied rho.
 
     Returns f(rho) -> DataFrame(case_key, effect_gls_supplied_rho, _estimate, _std_error,
     _p_value), rho a float or a Series indexed by case_key; the same test as the
     ``effect_gls_supplied_*`` columns of ``diagnose_cases`` (NaN for cases without a
-    baseline/treatment contrast), without recomputing the other diagnostics.
+    baseline/treatment contrast), without recomputing the other diagnostics; cases stacked by
+    (n, k) (``audit.summary_stacks.gls_at``).  ``f.grid(rhos)`` gives {rho: frame} for several
+    common coefficients in one pass.  ``alpha`` is kept for the signature (p-values do not use it).
     """
-    from audit.regression import gls_contrast_batch
+    stacks = observations if isinstance(observations, ReviewStacks) else ReviewStacks(observations)
+    keys = stacks.keys
 
-    groups = observations if isinstance(observations, DesignGroups) else case_designs(observations)
-    stacked = {sig: np.vstack([groups.outcomes[k] for k in keys]) for sig, keys in groups.members.items()}
+    def frame(rho_col: np.ndarray, est, se, p) -> pd.DataFrame:
+        return pd.DataFrame({
+            "case_key": keys,
+            "effect_gls_supplied_rho": rho_col,
+            "effect_gls_supplied_estimate": est,
+            "effect_gls_supplied_std_error": se,
+            "effect_gls_supplied_p_value": p,
+        })
 
     def at_rho(rho) -> pd.DataFrame:
-        parts = []
-        for sig, keys in groups.members.items():
-            des = groups.designs[sig]
-            if isinstance(rho, pd.Series):
-                r = rho.reindex(keys).to_numpy(dtype=float)
-            else:
-                r = np.full(len(keys), float(rho))
-            res = gls_contrast_batch(stacked[sig], des.X, des.contrast, np.nan_to_num(r), alpha)
-            est = res["estimate"].to_numpy(dtype=float)
-            se = res["std_error"].to_numpy(dtype=float)
-            p = res["p_value"].to_numpy(dtype=float)
-            dead = ~np.isfinite(r) | (des.n_transitions == 0)
-            parts.append(pd.DataFrame({
-                "case_key": keys,
-                "effect_gls_supplied_rho": r,
-                "effect_gls_supplied_estimate": np.where(dead, np.nan, est),
-                "effect_gls_supplied_std_error": np.where(dead, np.nan, se),
-                "effect_gls_supplied_p_value": np.where(dead, np.nan, p),
-            }))
-        if not parts:
-            return pd.DataFrame(columns=["case_key", "effect_gls_supplied_rho", "effect_gls_supplied_estimate",
-                                         "effect_gls_supplied_std_error", "effect_gls_supplied_p_value"])
-        return pd.concat(parts, ignore_index=True)
+        if isinstance(rho, pd.Series):
+            r = rho.set_axis(rho.index.astype(str)).reindex(keys).to_numpy(dtype=float)
+        else:
+            r = np.full(keys.size, float(rho))
+        est, se, p = gls_at(stacks, r[:, None])
+        return frame(r, est[:, 0], se[:, 0], p[:, 0])
 
     def grid(rhos) -> dict[float, pd.DataFrame]:
-        """``at_rho`` for several common coefficients, one batched GLS call per design."""
+        """``at_rho`` for several common coefficients in one pass over the stacks."""
         rhos = [float(r) for r in rhos]
-        cols: dict[float, list] = {r: [] for r in rhos}
-        for sig, keys in groups.members.items():
-            des = groups.designs[sig]
-            Y = stacked[sig]
-            m = Y.shape[0]
-            r = np.repeat(np.asarray(rhos), m)
-            res = gls_contrast_batch(np.tile(Y, (len(rhos), 1)), des.X, des.contrast, r, alpha)
-            dead = des.n_transitions == 0
-            for j, rho in enumerate(rhos):
-                sl = slice(j * m, (j + 1) * m)
-                cols[rho].append(pd.DataFrame({
-                    "case_key": keys,
-                    "effect_gls_supplied_rho": rho,
-                    "effect_gls_supplied_estimate": np.nan if dead else res["estimate"].to_numpy(float)[sl],
-                    "effect_gls_supplied_std_error": np.nan if dead else res["std_error"].to_numpy(float)[sl],
-                    "effect_gls_supplied_p_value": np.nan if dead else res["p_value"].to_numpy(float)[sl],
-                }))
-        return {rho: (pd.concat(parts, ignore_index=True) if parts else at_rho(rho)) for rho, parts in cols.items()}
+        est, se, p = gls_at(stacks, np.tile(np.asarray(rhos, dtype=float), (keys.size, 1)))
+        return {rho: frame(np.full(keys.size, rho), est[:, j], se[:, j], p[:, j]) for j, rho in enumerate(rhos)}
 
     at_rho.grid = grid  # type: ignore[attr-defined]
     return at_rho
@@ -443,15 +306,22 @@ def _series_label(s: pd.Series) -> pd.Series:
     return s.astype(object).where(s.notna(), "").astype(str).replace({"nan": "", "None": "", "<NA>": ""})
 
 
-def _groupings(frame: pd.DataFrame):
-    """Yield (group_by, group, row mask): all cases, then each value of study, design, outcome scale."""
-    yield "all", "all", np.ones(len(frame), dtype=bool)
-    for col in GROUPINGS:
+def _group_rows(labels) -> list[tuple[str, np.ndarray]]:
+    """(value, row indices) for each distinct label, values sorted (one sort, not one scan per value)."""
+    values, codes = np.unique(np.asarray(labels, dtype=str), return_inverse=True)
+    order = np.argsort(codes, kind="stable")
+    cuts = np.searchsorted(codes[order], np.arange(values.size + 1))
+    return [(str(v), order[cuts[j]:cuts[j + 1]]) for j, v in enumerate(values)]
+
+
+def _groupings(frame: pd.DataFrame, columns=GROUPINGS):
+    """Yield (group_by, group, row indices): all cases, then each value of study, design, outcome scale."""
+    yield "all", "all", np.arange(len(frame))
+    for col in columns:
         if col not in frame.columns:
             continue
-        labels = _labels(frame[col])
-        for value in sorted(labels.unique()):
-            yield col, value, (labels == value).to_numpy()
+        for value, rows in _group_rows(_labels(frame[col]).to_numpy()):
+            yield col, value, rows
 
 
 def _flip_counts(p_ind: np.ndarray, p_alt: np.ndarray, alpha: float) -> dict:
@@ -486,7 +356,7 @@ def _pct(x) -> str:
 # ----------------------------------------------------------------------------- summary parts
 
 
-def _shrinkage_table(cases: pd.DataFrame, groups: DesignGroups | None, notes: list) -> pd.DataFrame:
+def _shrinkage_table(cases: pd.DataFrame, stacks: ReviewStacks | None, notes: list) -> pd.DataFrame:
     m = len(cases)
     keys = cases["case_key"].astype(str).to_numpy()
     r1 = _num(cases, "r1_residual")
@@ -501,24 +371,24 @@ def _shrinkage_table(cases: pd.DataFrame, groups: DesignGroups | None, notes: li
     method = np.full(m, "first order", dtype=object)
     reason = np.full(m, R.OK, dtype=object)
     done = np.zeros(m, dtype=bool)
-    if groups is not None:
-        index = {k: i for i, k in enumerate(keys)}
-        for sig, members in groups.members.items():
-            rows = np.array([index[k] for k in members if k in index], dtype=int)
-            if rows.size == 0:
-                continue
-            res = ar1_from_residual_lag1(r1[rows], groups.designs[sig].X)
-            if res.method == "exact mean inversion" and not np.all(res.reason == R.NUMERICAL_FAILURE):
-                rho[rows], var[rows], at_bound[rows] = res.rho, res.variance, res.at_bound
-                method[rows] = res.method
-                reason[rows] = res.reason
-                done[rows] = True
+    if stacks is not None:
+        pos = stacks.positions(keys)
+        have = pos >= 0
+        r1_by_pos = np.full(len(stacks), np.nan)
+        r1_by_pos[pos[have]] = r1[have]
+        res, covered = ar1_from_r1(stacks, r1_by_pos)
+        rows = np.flatnonzero(have & covered[np.where(have, pos, 0)])
+        src = pos[rows]
+        rho[rows], var[rows], at_bound[rows] = res.rho[src], res.variance[src], res.at_bound[src]
+        method[rows] = res.method
+        reason[rows] = res.reason[src]
+        done[rows] = True
     rest = ~done
     if rest.any():
         res = ar1_from_residual_lag1(r1[rest], null_mean=mu0[rest], null_variance=v0[rest],
                                      n_obs=_num(cases, "n_obs")[rest], n_params=_num(cases, "n_params")[rest])
         rho[rest], var[rest], at_bound[rest], reason[rest] = res.rho, res.variance, res.at_bound, res.reason
-        if groups is None:
+        if stacks is None:
             notes.append(("ar1_calibration", "partial",
                           "observations not given: AR(1) per case by the first-order correction "
                           "r1_corrected / ((n-k) V0), which understates large coefficients"))
@@ -553,9 +423,9 @@ def _pooled_autocorrelation(shrink: pd.DataFrame, alpha: float) -> pd.DataFrame:
          "(unbiased for 0 only when rho = 0)"),
     )
     for measure, eff_col, var_col, within in measures:
-        for group_by, group, mask in _groupings(shrink):
-            sub = shrink.loc[mask]
-            res = random_effects_dersimonian_laird(sub[eff_col].to_numpy(float), sub[var_col].to_numpy(float), alpha)
+        eff, var = shrink[eff_col].to_numpy(float), shrink[var_col].to_numpy(float)
+        for group_by, group, rows_of in _groupings(shrink):
+            res = random_effects_dersimonian_laird(eff[rows_of], var[rows_of], alpha)
             row = {"measure": measure, "group_by": group_by, "group": group}
             row.update({k: v for k, v in asdict(res).items() if k not in ("method",)})
             row["n_cases"] = row.pop("n")
@@ -573,25 +443,16 @@ def _pooled_autocorrelation(shrink: pd.DataFrame, alpha: float) -> pd.DataFrame:
     return pd.DataFrame(rows)[cols]
 
 
-def _durbin_watson_table(cases: pd.DataFrame, groups: DesignGroups | None, pooled_rho: float, alpha: float,
+def _durbin_watson_table(cases: pd.DataFrame, stacks: ReviewStacks | None, pooled_rho: float, alpha: float,
                          notes: list) -> pd.DataFrame:
     p_pos = _num(cases, "dw_p_positive")
     p_neg = _num(cases, "dw_p_negative")
     power = np.full(len(cases), np.nan)
     power_rho = pooled_rho
-    if groups is not None and np.isfinite(pooled_rho):
-        from audit.durbin_watson import dw_power
-
-        index = {k: i for i, k in enumerate(cases["case_key"].astype(str))}
-        for sig, members in groups.members.items():
-            rows = [index[k] for k in members if k in index]
-            if not rows:
-                continue
-            try:
-                pw = float(dw_power(groups.designs[sig].X, float(np.clip(pooled_rho, -RHO_BOUND, RHO_BOUND)), alpha))
-            except (ValueError, np.linalg.LinAlgError, ArithmeticError):
-                pw = math.nan
-            power[rows] = pw
+    if stacks is not None and np.isfinite(pooled_rho):
+        pos = stacks.positions(cases["case_key"].astype(str).to_numpy())
+        by_pos = dw_power_at(stacks, float(np.clip(pooled_rho, -RHO_BOUND, RHO_BOUND)), alpha)
+        power = np.where(pos >= 0, by_pos[np.where(pos >= 0, pos, 0)], np.nan)
     else:
         power = _num(cases, "dw_power")
         used = _num(cases, "dw_power_rho")
@@ -600,14 +461,16 @@ def _durbin_watson_table(cases: pd.DataFrame, groups: DesignGroups | None, poole
                       f"coefficient used by the diagnostics ({_fmt(power_rho)}), not at the pooled one"))
     frame = cases[[c for c in GROUPINGS if c in cases.columns]].copy()
     rows = []
-    for group_by, group, mask in _groupings(frame):
-        ok = mask & np.isfinite(p_pos)
+    for group_by, group, idx in _groupings(frame):
+        pp = p_pos[idx]
+        ok = np.isfinite(pp)
         n = int(ok.sum())
-        npos = int((ok & (p_pos < alpha)).sum())
-        nneg = int((ok & (p_neg < alpha)).sum())
+        npos = int((ok & (pp < alpha)).sum())
+        nneg = int((ok & (p_neg[idx] < alpha)).sum())
         lo_p, hi_p = wilson_interval(npos, n, alpha)
         lo_n, hi_n = wilson_interval(nneg, n, alpha)
-        pw = power[mask & np.isfinite(power)]
+        pw = power[idx]
+        pw = pw[np.isfinite(pw)]
         rows.append({
             "group_by": group_by, "group": group, "n_cases": n,
             "n_significant_positive": npos, "share_significant_positive": npos / n if n else math.nan,
@@ -640,19 +503,49 @@ def _alternatives(cases: pd.DataFrame, shrunken_run: pd.DataFrame | None, notes:
     return out
 
 
+def _group_codes(frame: pd.DataFrame, columns=GROUPINGS):
+    """Yield (group_by, sorted group values, code of each row): all cases, then each grouping column."""
+    yield "all", np.array(["all"]), np.zeros(len(frame), dtype=np.int64)
+    for col in columns:
+        if col in frame.columns:
+            values, codes = np.unique(_labels(frame[col]).to_numpy().astype(str), return_inverse=True)
+            yield col, values, codes.ravel()
+
+
 def _flip_rates(cases: pd.DataFrame, alts: dict, alpha: float) -> pd.DataFrame:
-    frame = cases[[c for c in GROUPINGS if c in cases.columns]].copy()
-    rows = []
+    """``_flip_counts`` and ``_with_rates`` for every alternative and group (counts by bincount)."""
+    frame = cases[[c for c in GROUPINGS if c in cases.columns]]
+    parts = []
     for alt, (p_ind, p_alt) in alts.items():
-        for group_by, group, mask in _groupings(frame):
-            row = {"alternative": alt, "label": ALTERNATIVE_LABELS[alt], "group_by": group_by, "group": group}
-            row.update(_flip_counts(p_ind[mask], p_alt[mask], alpha))
-            rows.append(_with_rates(row, alpha))
+        ok = np.isfinite(p_ind) & np.isfinite(p_alt)
+        sig_i = ok & (p_ind < alpha)
+        sig_a = ok & (p_alt < alpha)
+        lost = sig_i & ~sig_a
+        gained = sig_a & ~sig_i
+        for group_by, values, codes in _group_codes(frame):
+            def count(flags, codes=codes, size=values.size):
+                return np.bincount(codes, weights=flags, minlength=size).astype(np.int64)
+            part = pd.DataFrame({"alternative": alt, "label": ALTERNATIVE_LABELS[alt], "group_by": group_by,
+                                 "group": values.astype(object), "n_cases": count(ok),
+                                 "n_significant_independence": count(sig_i),
+                                 "n_significant_alternative": count(sig_a), "n_flips": count(lost | gained),
+                                 "n_lost": count(lost), "n_gained": count(gained)})
+            n = part["n_cases"].to_numpy()
+            for name, cnt in (("flip", "n_flips"), ("lost", "n_lost"), ("gained", "n_gained")):
+                c = part[cnt].to_numpy()
+                lo, hi = wilson_interval(c, n, alpha)
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    part[f"{name}_rate"] = np.where(n > 0, c / np.maximum(n, 1), np.nan)
+                part[f"{name}_ci_lower"] = lo
+                part[f"{name}_ci_upper"] = hi
+            parts.append(part)
     cols = ["alternative", "label", "group_by", "group", "n_cases", "n_significant_independence",
             "n_significant_alternative", "n_flips", "flip_rate", "flip_ci_lower", "flip_ci_upper", "n_lost",
             "lost_rate", "lost_ci_lower", "lost_ci_upper", "n_gained", "gained_rate", "gained_ci_lower",
             "gained_ci_upper"]
-    return pd.DataFrame(rows, columns=cols)
+    if not parts:
+        return pd.DataFrame(columns=cols)
+    return pd.concat(parts, ignore_index=True)[cols]
 
 
 def _sensitivity(cases: pd.DataFrame, at_rho: DiagnoseAtRho, rhos, alpha: float) -> pd.DataFrame:
@@ -768,15 +661,12 @@ def _pooled_effect(cases: pd.DataFrame, shrink: pd.DataFrame, alpha: float, note
             var = _num(cases, se_col) ** 2
         est = _num(cases, est_col)
         frame = pd.DataFrame({"study": cases["study"].astype(str).to_numpy()})
-        yield_groups = [("all", "all", np.ones(len(cases), dtype=bool))]
-        for study in sorted(frame["study"].unique()):
-            yield_groups.append(("study", study, (frame["study"] == study).to_numpy()))
-        for group_by, group, mask in yield_groups:
-            res = {a: random_effects_dersimonian_laird(est[mask], v[mask], alpha)
+        for group_by, group, idx in _groupings(frame, columns=("study",)):
+            res = {a: random_effects_dersimonian_laird(est[idx], v[idx], alpha)
                    for a, v in (("independence", var), ("ar1", var * inflation))}
             width_ind = res["independence"].ci_upper - res["independence"].ci_lower
-            usable = mask & np.isfinite(est) & np.isfinite(var) & (var > 0)
-            case_ratio = float(np.median(np.sqrt(inflation[usable]))) if usable.any() else math.nan
+            usable = idx[np.isfinite(est[idx]) & np.isfinite(var[idx]) & (var[idx] > 0)]
+            case_ratio = float(np.median(np.sqrt(inflation[usable]))) if usable.size else math.nan
             for assumption, r in res.items():
                 width = r.ci_upper - r.ci_lower
                 rows.append({
@@ -864,13 +754,16 @@ def _screening(cases: pd.DataFrame, verdicts: pd.DataFrame, alts: dict, pooled: 
     pooled_study = pooled[(pooled["measure"] == "ar1_coefficient") & (pooled["group_by"] == "study")]
     pooled_study = pooled_study.set_index("group")
     rows = []
-    for s in sorted(set(study)):
-        m = study == s
-        v = verdicts[verdicts["study"] == s]
-        n = int(m.sum())
-        n_dw = int((m & np.isfinite(p_pos)).sum())
-        dw_pos = int((m & (p_pos < alpha)).sum())
-        dw_neg = int((m & (p_neg < alpha)).sum())
+    by_study: dict[str, list[dict]] = {}
+    for rec in verdicts.to_dict("records"):  # plain dicts: no DataFrame per study
+        by_study.setdefault(str(rec["study"]), []).append(rec)
+    pooled_ar1 = pooled_study["estimate"].to_dict()
+    for s, m in _group_rows(study):
+        v = by_study.get(s, [])
+        n = int(m.size)
+        n_dw = int(np.isfinite(p_pos[m]).sum())
+        dw_pos = int((p_pos[m] < alpha).sum())
+        dw_neg = int((p_neg[m] < alpha).sum())
         five_s = five[m]
         n_five = int(np.nansum(five_s)) if np.isfinite(five_s).any() else None
         n_q = int(quarantined.get(s, 0))
@@ -878,8 +771,8 @@ def _screening(cases: pd.DataFrame, verdicts: pd.DataFrame, alts: dict, pooled: 
 
         def join_verdicts(col: str) -> str:
             if len(v) == 1:
-                return str(v[col].iloc[0])
-            return "; ".join(f"{ser or 'outcome'}: {val}" for ser, val in zip(v["series"], v[col]))
+                return str(v[0][col])
+            return "; ".join(f"{r['series'] or 'outcome'}: {r[col]}" for r in v)
 
         row = {
             "study": s, "cases_audited": n, "cases_quarantined": n_q,
@@ -891,8 +784,8 @@ def _screening(cases: pd.DataFrame, verdicts: pd.DataFrame, alts: dict, pooled: 
             "verdict_independence": join_verdicts("verdict_independence"),
             "verdict_ar1": join_verdicts("verdict_ar1"),
             "verdict_shrunken": join_verdicts("verdict_shrunken"),
-            "verdict_changes": bool(v["verdict_changes"].any()),
-            "pooled_ar1": float(pooled_study["estimate"].get(s, math.nan)),
+            "verdict_changes": any(bool(r["verdict_changes"]) for r in v),
+            "pooled_ar1": float(pooled_ar1.get(s, math.nan)),
         }
         row["note"] = _screening_note(row, v)
         rows.append(row)
@@ -912,9 +805,10 @@ def _plural(n: int, word: str) -> str:
     return f"{n} {word}" + ("" if n == 1 else "s")
 
 
-def _screening_note(row: dict, verdicts: pd.DataFrame) -> str:
+def _screening_note(row: dict, verdicts: list[dict]) -> str:
+    """The study's note; ``verdicts`` its rows of the study-verdicts table as dicts."""
     parts = []
-    for _, v in verdicts[verdicts["verdict_changes"]].iterrows():
+    for v in (r for r in verdicts if r["verdict_changes"]):
         what = f"the verdict for {v['series']}" if v["series"] else "the study's verdict"
         if v["verdict_independence"] == "effect":
             parts.append(f"{what} depends on assuming independent observations: it shows an effect "
@@ -1034,11 +928,11 @@ def summarize(cases: pd.DataFrame, alpha: float = 0.05, diagnose_at_rho: Diagnos
     """
     notes: list[tuple[str, str, str]] = []
     cases = cases.reset_index(drop=True)
-    groups = case_designs(observations) if observations is not None and len(observations) else None
-    if diagnose_at_rho is None and groups is not None:
-        diagnose_at_rho = make_gls_at_rho(groups, alpha)
+    stacks = ReviewStacks(observations) if observations is not None and len(observations) else None
+    if diagnose_at_rho is None and stacks is not None:
+        diagnose_at_rho = make_gls_at_rho(stacks, alpha)
 
-    shrink = _shrinkage_table(cases, groups, notes)
+    shrink = _shrinkage_table(cases, stacks, notes)
     pooled = _pooled_autocorrelation(shrink, alpha)
     overall_ar1 = pooled[(pooled["measure"] == "ar1_coefficient") & (pooled["group_by"] == "all")].iloc[0]
     mu, tau2 = float(overall_ar1["estimate"]), float(overall_ar1["tau2"])
@@ -1064,7 +958,7 @@ def summarize(cases: pd.DataFrame, alpha: float = 0.05, diagnose_at_rho: Diagnos
         notes.append(("flip_rates", "skipped", "no observations and no diagnose_at_rho: no decision under the "
                       "shrunken AR(1) and no sensitivity curve"))
 
-    dw = _durbin_watson_table(cases, groups, mu, alpha, notes)
+    dw = _durbin_watson_table(cases, stacks, mu, alpha, notes)
     alts = _alternatives(cases, shrunken_run, notes)
     flips = _flip_rates(cases, alts, alpha)
     verdicts = _study_verdicts(cases, shrunken_run, alpha)

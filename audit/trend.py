@@ -37,6 +37,10 @@ __all__ = [
     "baseline_trends",
     "normalize_direction",
     "unscale_checked",
+    "scaled_ratio",
+    "scaling_exponents",
+    "window_exponents",
+    "SAFE_EXPONENT",
 ]
 
 _NAN = float("nan")
@@ -67,6 +71,25 @@ def _finite_pair(x, y) -> tuple[np.ndarray, np.ndarray, str]:
     return x, y, R.OK
 
 
+# Values whose binary exponent is within +-SAFE_EXPONENT are used unscaled by the effect sizes:
+# their squares and fourth powers (over phase sizes up to ~2**60) stay normal doubles.
+SAFE_EXPONENT = 240
+
+
+def window_exponents(e):
+    """Binary exponents with those within +-SAFE_EXPONENT replaced by 0 (no scaling needed)."""
+    e = np.asarray(e, dtype=np.int64)
+    out = np.where(np.abs(e) <= SAFE_EXPONENT, 0, e)
+    return int(out) if out.ndim == 0 else out
+
+
+def scaling_exponents(Y):
+    """``audit.regression.binary_exponents`` of Y (row by row), 0 where within +-SAFE_EXPONENT:
+    ordinary data keep exactly the unscaled arithmetic (libm pow, used by x**2 on scalars, is not
+    exactly scale-equivariant), data near the float limits are scaled."""
+    return window_exponents(binary_exponents(Y))
+
+
 def unscale_checked(values, e):
     """(values * 2**e, not_representable): NaN where a finite value would exceed the largest double.
 
@@ -82,10 +105,16 @@ def unscale_checked(values, e):
 
 
 def scaled_ratio(num, den, e):
-    """(num / den) * 2**e as ``unscale_checked`` (a ratio of scaled quantities, scaled back)."""
+    """((num / den) * 2**e, not_representable) for a ratio of exactly scaled quantities: NaN where
+    finite num and den give a result beyond the largest double (works on scalars and arrays)."""
+    num, den = np.asarray(num, dtype=float), np.asarray(den, dtype=float)
     with np.errstate(over="ignore", divide="ignore", invalid="ignore", under="ignore"):
-        q = np.asarray(num, dtype=float) / np.asarray(den, dtype=float)
-    return unscale_checked(q, e)
+        out = unscale(num / den, e)
+    bad = np.isfinite(num) & np.isfinite(den) & ~np.isfinite(out)
+    out = np.where(bad, np.nan, out)
+    if out.ndim == 0:
+        return float(out), bool(bad)
+    return out, bad
 
 
 def _scaled(v: np.ndarray) -> tuple[int, np.ndarray]:

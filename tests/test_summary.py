@@ -216,7 +216,7 @@ def test_ar1_from_residual_lag1_inverts_the_curve_and_first_order_path():
     rhos = np.array([-0.5, 0.0, 0.25, 0.6])
     r1 = residual_lag1_mean_under_ar1(X, rhos)
     res = ar1_from_residual_lag1(r1, X)
-    np.testing.assert_allclose(res.rho, rhos, atol=2e-3)  # linear interpolation on a 0.025 grid
+    np.testing.assert_allclose(res.rho, rhos, atol=1e-9)  # root of the exact curve (brentq to 1e-10)
     mean0, v0 = _null_moments(X)
     np.testing.assert_allclose(res.variance, 1 / ((n - k) ** 2 * v0), rtol=1e-10)
     far = ar1_from_residual_lag1([0.99, -0.99, np.nan], X)
