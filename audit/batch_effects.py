@@ -177,6 +177,14 @@ def _join_rows(parts: list[np.ndarray]) -> np.ndarray:
     return out
 
 
+def _with_code(codes: np.ndarray, mask: np.ndarray, code: str = R.NUMERICAL_FAILURE) -> np.ndarray:
+    """Object array of reason codes with `code` joined in (R.join) where mask; others unchanged."""
+    out = np.array(codes, dtype=object)
+    for i in np.flatnonzero(mask):
+        out[i] = R.join(out[i], code)
+    return out
+
+
 def _gather(values: np.ndarray, rows: np.ndarray, start: np.ndarray, length: np.ndarray,
             width: int) -> np.ndarray:
     """(m, width) matrix of values[rows[start + k]] for k < length, NaN beyond."""
@@ -673,7 +681,7 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd,
         scale_case = np.array([None if v is None else str(v).strip().lower() for v in scale_raw], dtype=object)
         scale = scale_case[con_case] if m else np.zeros(0, dtype=object)
         ratio = np.isin(scale.astype(str), list(RATIO_SCALES)) & np.array([v is not None for v in scale], bool)
-        moments_overflow = _codes(~(bad_ma | bad_mb | bad_sa | bad_sb), R.NUMERICAL_FAILURE)
+        moments_overflow = bad_ma | bad_mb | bad_sa | bad_sb
         badmean = bad_ma | bad_mb
         posmean = (ma > 0) & (mb > 0)
         two = (na_i >= 2) & (nb_i >= 2)
@@ -694,10 +702,9 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd,
         code = np.where(~ratio, R.NOT_RATIO_SCALE, np.where(b1 | bad_lv, R.NUMERICAL_FAILURE, np.where(
             b2, R.NONPOSITIVE_MEAN, np.where(b3, R.TOO_FEW_POINTS, np.where(lvar > 0, R.OK, R.ZERO_VARIANCE))))
                         ).astype(object)
-        code = np.where(b1 | bad_lv, code, _join_rows([code, moments_overflow])).astype(object)
+        code = _with_code(code, moments_overflow & ~(b1 | bad_lv))
         code_adj = np.where(b4 & ~rho_ok, R.NON_FINITE_INPUT, code).astype(object)
-        code_adj = np.where(bad_adj, _join_rows([code_adj, _codes(~bad_adj, R.NUMERICAL_FAILURE)]),
-                            code_adj).astype(object)
+        code_adj = _with_code(code_adj, bad_adj)
         imp = sign * lbc
         lse = np.where(np.isfinite(lvar) & (lvar >= 0), np.sqrt(lvar), _NAN)
         zq = stats.norm.ppf(0.5 + confidence / 2.0)
@@ -738,9 +745,8 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd,
         smd_ph = np.where(ok_p, smd_p * j_p, _NAN)
         reason_p = np.where(df_p < 1, R.TOO_FEW_POINTS, np.where(~(sp_s > 0), R.ZERO_VARIANCE, np.where(
             bad_p, R.NUMERICAL_FAILURE, np.where(np.isfinite(j_p), R.OK, R.TOO_FEW_POINTS)))).astype(object)
-        md_code = _codes(~bad_md, R.NUMERICAL_FAILURE)
-        reason_b = _join_rows([reason_b, md_code, _codes(~bad_sa, R.NUMERICAL_FAILURE)])
-        reason_p = _join_rows([reason_p, md_code, _codes(~bad_sp, R.NUMERICAL_FAILURE)])
+        reason_b = _with_code(reason_b, bad_md | bad_sa)
+        reason_p = _with_code(reason_p, bad_md | bad_sp)
         f["smd"] = dict(mean_difference=md, sd_baseline=sa, sd_pooled=sp, smd_baseline_sd=smd_b,
                         smd_baseline_sd_hedges=smd_bh, smd_pooled_sd=smd_p, smd_pooled_sd_hedges=smd_ph,
                         desired_direction=direction, direction_assumed=assumed, reason_baseline_sd=reason_b,
@@ -757,7 +763,7 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd,
                 arr[~rho_ok] = _NAN
             t[4][~rho_ok] = R.NON_FINITE_INPUT
         if bad_md.any():  # the mean difference itself is not representable
-            w, wa, pl, pa = ((*t[:4], _join_rows([t[4], md_code])) for t in (w, wa, pl, pa))
+            w, wa, pl, pa = ((*t[:4], _with_code(t[4], bad_md)) for t in (w, wa, pl, pa))
         f["mean_difference"] = dict(
             mean_difference=md, rho_used=rho_used, n_baseline_effective=na_e, n_treatment_effective=nb_e,
             welch_se=w[0], welch_df=w[1], welch_t=w[2], welch_p_value=w[3], welch_se_adjusted=wa[0],
@@ -972,15 +978,14 @@ def _case_level_frame(cols, ci, ncase, design, direction, assumed, scale_raw, rh
             mean, bad = cmean(v, ok)
             out[key] = np.where(cnt > 0, mean, _NAN)
             smd_overflow |= bad & (cnt > 0)
-        out["smd_reason"] = _join_rows([cjoin(cols["smd_reason_baseline_sd"]),
-                                        _codes(~smd_overflow, R.NUMERICAL_FAILURE)])
+        out["smd_reason"] = _with_code(cjoin(cols["smd_reason_baseline_sd"]), smd_overflow)
 
         md = cols["mean_difference"].astype(float)
         okm = np.isfinite(md)
         cnt = np.bincount(ci, weights=okm.astype(float), minlength=ncase)
         md_mean, md_bad = cmean(md, okm)
         out["mean_difference"] = np.where(cnt > 0, md_mean, _NAN)
-        md_overflow = _codes(~(md_bad & (cnt > 0)), R.NUMERICAL_FAILURE)
+        md_overflow = md_bad & (cnt > 0)
 
         def combined_welch(se_key, df_key):
             """(p, not representable) per case; standard errors scaled by 2**-g per case (exact)."""
@@ -1004,12 +1009,10 @@ def _case_level_frame(cols, ci, ncase, design, direction, assumed, scale_raw, rh
         out["mean_difference_welch_p_value"] = p
         out["mean_difference_welch_p_value_adjusted"] = pa
         out["mean_difference_welch_flip"] = _flip(p, pa, alpha)
-        out["mean_difference_reason"] = np.where(
-            np.isfinite(p), md_overflow, _join_rows([cjoin(cols["mean_difference_welch_reason"]),
-                                                     _codes(~bad_p, R.NUMERICAL_FAILURE), md_overflow])).astype(object)
-        out["mean_difference_reason_adjusted"] = np.where(
-            np.isfinite(pa), md_overflow, _join_rows([cjoin(cols["mean_difference_welch_reason_adjusted"]),
-                                                      _codes(~bad_pa, R.NUMERICAL_FAILURE), md_overflow])).astype(object)
+        out["mean_difference_reason"] = _with_code(np.where(
+            np.isfinite(p), R.OK, cjoin(cols["mean_difference_welch_reason"])), md_overflow | bad_p)
+        out["mean_difference_reason_adjusted"] = _with_code(np.where(
+            np.isfinite(pa), R.OK, cjoin(cols["mean_difference_welch_reason_adjusted"])), md_overflow | bad_pa)
 
     # cases without contrasts: NaN, flips None, reason fields absent (NaN in a frame of dicts)
     for key, v in out.items():
@@ -1232,7 +1235,7 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
             ols_reason = np.where(degenerate, np.where(sst == 0.0, R.join(R.ZERO_RESIDUAL_VARIANCE, R.CONSTANT_SERIES),
                                                        R.ZERO_RESIDUAL_VARIANCE), R.OK).astype(object)
             overflow = overflow | (bad_se & ~degenerate)
-            ols_reason = _join_rows([ols_reason, _codes(~overflow, R.NUMERICAL_FAILURE)])
+            ols_reason = _with_code(ols_reason, overflow)
         ols_reason = np.where(singular, R.SINGULAR_DESIGN, ols_reason).astype(object)
         for arr in (slope, intercept, se, p):
             arr[singular] = _NAN

@@ -598,7 +598,9 @@ def log_response_ratio(
     lrr = float(np.log(mb) - np.log(ma))
     if na < 2 or nb < 2:
         return out(lrr=lrr, code=R.join(R.TOO_FEW_POINTS, overflow))
-    # SD/mean ratios within a phase are scale-free: taken on the scaled values
+    # SD/mean ratios within a phase are scale-free: taken on the scaled values (numpy scalars, so
+    # that a ratio beyond the float range gives inf, not an exception)
+    sa_s, sb_s, ma_s, mb_s = (np.float64(v) for v in (sa_s, sb_s, ma_s, mb_s))
     with np.errstate(over="ignore", divide="ignore", invalid="ignore", under="ignore"):
         lbc = float(np.log(mb) + sb_s**2 / (2 * nb * mb_s**2) - np.log(ma) - sa_s**2 / (2 * na * ma_s**2))
         var = float(sa_s**2 / (na * ma_s**2) + sb_s**2 / (nb * mb_s**2))

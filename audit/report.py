@@ -19,7 +19,8 @@ import numpy as np
 import pandas as pd
 
 from audit import figures as F
-from audit.summary import (DEMONSTRATIONS_NEEDED, SUMMARY_TABLES, DesignGroups, _read_optional, case_designs,
+from audit.summary import (DEMONSTRATIONS_NEEDED, SUMMARY_TABLES, DesignGroups, _read_optional, _series_label,
+                           case_designs,
                            summarize)
 
 __all__ = ["write_report", "build_report_html", "cmd_report", "REFERENCES", "CAUTION_TEXT"]
@@ -78,6 +79,11 @@ REFERENCES = [
     "Wilson, E. B. (1927). Probable inference, the law of succession, and statistical inference. Journal "
     "of the American Statistical Association, 22, 209-212.",
 ]
+
+# Large reviews: the report stays readable and quick to open; every row stays in the results store.
+MAX_CASE_GRAPHS = 300  # case graphs drawn (flagged cases first when the review has more)
+MAX_FOREST_STUDIES = 50  # studies in the forest plot (those with most cases when there are more)
+MAX_TABLE_ROWS = 500  # rows of the long tables (screening, flips, per-study effects)
 
 DW_ZONE_WORDS = {
     "positive": "positive serial dependence",
@@ -299,6 +305,44 @@ def _kpis(overall: pd.Series) -> str:
     return "<ul class='kpis'>" + "".join(f"<li><b>{v}</b>{_e(k)}</li>" for k, v in items) + "</ul>"
 
 
+def _forest_rows(pooled: pd.DataFrame) -> tuple[pd.DataFrame, str]:
+    """The pooled table with at most MAX_FOREST_STUDIES study rows (most cases first), and a caption note."""
+    is_study = (pooled["group_by"] == "study") & (pooled["measure"] == "ar1_coefficient")
+    studies = pooled[is_study]
+    if len(studies) <= MAX_FOREST_STUDIES:
+        return pooled, ""
+    keep = studies.sort_values(["n_cases", "group"], ascending=[False, True]).head(MAX_FOREST_STUDIES)
+    note = (f" Shown: the {MAX_FOREST_STUDIES} studies with most cases, of {len(studies)}; every study's "
+            "estimate is in the screening table and the results store.")
+    return pd.concat([pooled[~is_study], keep]), note
+
+
+def _cases_to_draw(cases: pd.DataFrame, verdicts: pd.DataFrame | None) -> tuple[pd.DataFrame, str]:
+    """At most MAX_CASE_GRAPHS cases to draw: all of a small review; else cases of study outcomes whose
+    verdict changes first, then cases whose decision flips, then the rest, in study order."""
+    if len(cases) <= MAX_CASE_GRAPHS:
+        return cases, ""
+    rank = np.full(len(cases), 2)
+    flip_cols = [c for c in ("flip_gls_reml", "flip_hac", "flip_tau") if c in cases]
+    if flip_cols:
+        flipped = np.zeros(len(cases), dtype=bool)
+        for col in flip_cols:
+            flipped |= cases[col].astype("boolean").fillna(False).to_numpy(dtype=bool)
+        rank[flipped] = 1
+    if verdicts is not None and len(verdicts) and "verdict_changes" in verdicts:
+        changed = verdicts[verdicts["verdict_changes"].astype(bool)]
+        series = _series_label(cases["series"]) if "series" in cases else pd.Series("", index=cases.index)
+        pairs = set(zip(changed["study"].astype(str), changed["series"].astype(str)))
+        in_changed = np.array([(s, r) in pairs for s, r in zip(cases["study"].astype(str), series)], dtype=bool)
+        rank[in_changed] = 0
+    order = cases.assign(_rank=rank).sort_values(["_rank", "study", "case"], kind="stable")
+    chosen = order.head(MAX_CASE_GRAPHS).drop(columns="_rank")
+    note = (f"This review has {len(cases)} cases; graphs are drawn for {len(chosen)} of them: cases in study "
+            "outcomes whose verdict changes first, then cases whose decision flips, then others. Every case's "
+            "results are in the results store (cases table).")
+    return chosen, note
+
+
 def _flip_cases(cases: pd.DataFrame, shrink: pd.DataFrame | None) -> pd.DataFrame:
     c = cases.copy()
     flags = []
@@ -359,9 +403,10 @@ def build_report_html(tables: dict[str, pd.DataFrame], cases: pd.DataFrame, obse
                     "coefficient is not 0). Right: each case's AR(1) coefficient from inverting the exact "
                     "expectation of its residual autocorrelation. Black line: random-effects pooled value; "
                     "orange band: 95% confidence interval; yellow band: 95% prediction interval."))
-    add(_figure(F.forest_by_study(pooled), "Forest plot of the pooled AR(1) coefficient by study",
+    forest, forest_note = _forest_rows(pooled)
+    add(_figure(F.forest_by_study(forest), "Forest plot of the pooled AR(1) coefficient by study",
                 "Pooled AR(1) coefficient per study (squares sized by number of cases, lines 95% CI), the "
-                "review-wide estimate (diamond) and its 95% prediction interval (dashed)."))
+                "review-wide estimate (diamond) and its 95% prediction interval (dashed)." + forest_note))
     sel = pooled[pooled["group_by"].isin(["all", "design", "outcome_scale"])]
     add("<h3>Pooled estimates (random effects, DerSimonian-Laird)</h3>")
     add(_table(sel, [("measure", "measure", "text"), ("group_by", "grouping", "text"), ("group", "group", "text"),
@@ -413,7 +458,7 @@ def build_report_html(tables: dict[str, pd.DataFrame], cases: pd.DataFrame, obse
                              ("verdict_independence", "independence (OLS)", "text"),
                              ("verdict_ar1", "AR(1) (GLS, own REML)", "text"),
                              ("verdict_shrunken", "AR(1) (GLS, shrunken)", "text"), ("change", "change", "text")],
-                   empty="No study outcome changes its verdict."))
+                   empty="No study outcome changes its verdict.", limit=MAX_TABLE_ROWS))
     if screening is not None and len(screening):
         add("<h3>Screening table</h3>")
         add(_table(screening, [("study", "study", "wide"), ("cases_audited", "cases audited", "int"),
@@ -423,7 +468,8 @@ def build_report_html(tables: dict[str, pd.DataFrame], cases: pd.DataFrame, obse
                                ("n_baseline_trend_flags", "baseline-trend flags", "int"),
                                ("verdict_independence", "verdict, independence", "text"),
                                ("verdict_ar1", "verdict, own AR(1)", "text"),
-                               ("verdict_shrunken", "verdict, shrunken AR(1)", "text")], notes="note"))
+                               ("verdict_shrunken", "verdict, shrunken AR(1)", "text")], notes="note",
+                   limit=MAX_TABLE_ROWS))
     add("</section>")
 
     # --- pooled effect
@@ -447,7 +493,8 @@ def build_report_html(tables: dict[str, pd.DataFrame], cases: pd.DataFrame, obse
             add("<details><summary>By study</summary>")
             add(_table(per_study, [("measure", "measure", "text"), ("group", "study", "wide"),
                                    ("n_cases", "cases", "int"), ("estimate", "estimate under AR(1)", "num"),
-                                   ("ci_width", "CI width under AR(1)", "num"), ("width_ratio", "width ratio", "num")]))
+                                   ("ci_width", "CI width under AR(1)", "num"), ("width_ratio", "width ratio", "num")],
+                       limit=MAX_TABLE_ROWS))
             add("</details>")
     else:
         add("<p class='small'>No effect-size columns in this run's cases table; nothing pooled.</p>")
@@ -463,7 +510,7 @@ def build_report_html(tables: dict[str, pd.DataFrame], cases: pd.DataFrame, obse
                     ("effect_ols_estimate", "effect", "num"), ("effect_ols_p_value", "p OLS", "p"),
                     ("ar1_reml_rho", "REML AR(1)", "num"), ("effect_gls_reml_p_value", "p GLS", "p"),
                     ("effect_hac_p_value", "p HAC", "p"), ("shrunken", "shrunken AR(1)", "num"),
-                    ("flips", "flips under", "text")], empty="No case changes its decision."))
+                    ("flips", "flips under", "text")], empty="No case changes its decision.", limit=MAX_TABLE_ROWS))
     add("</section>")
 
     # --- small multiples
@@ -473,8 +520,12 @@ def build_report_html(tables: dict[str, pd.DataFrame], cases: pd.DataFrame, obse
             "black line: OLS fit of the case model; vermillion dashed line: GLS fit with the case's REML AR(1). "
             "Under each graph: the Durbin-Watson zone in words, the exact p-value for positive dependence, "
             "and the AR(1) estimates.</p>")
-        groups = case_designs(observations)
-        panels = _case_panels(cases, observations, groups, shrink)
+        drawn, graph_note = _cases_to_draw(cases, verdicts)
+        if graph_note:
+            add(f"<p>{_e(graph_note)}</p>")
+        obs_drawn = observations[observations["case_key"].astype(str).isin(set(drawn["case_key"].astype(str)))]
+        groups = case_designs(obs_drawn)
+        panels = _case_panels(drawn, obs_drawn, groups, shrink)
         add(f"<p>{F.legend_svg()}</p>")
         for study in sorted(panels):
             add(f"<h3>{_e(study)}</h3><div class='panels'>"

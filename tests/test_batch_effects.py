@@ -325,3 +325,81 @@ def test_batch_values_match_scipy(synthetic):
         if np.isfinite(row["mann_kendall_tau_b"]):
             # source: scipy.stats.kendalltau (tau-b against time)
             assert row["mann_kendall_tau_b"] == pytest.approx(stats.kendalltau(x, y).statistic, rel=1e-9)
+
+
+# ------------------------------------------------------------------------------------------------
+# values near the float limits: batch equals the per-case path, finite or NaN with a reason
+# ------------------------------------------------------------------------------------------------
+
+_BIG = np.finfo(float).max
+_Y12 = np.array([3.0, 4.0, 2.0, 5.0, 3.5, 4.5, 8.0, 9.5, 7.0, 8.5, 10.0, 9.0])
+EXTREME_OUTCOMES = {
+    "ordinary": _Y12,
+    "huge": _Y12 * 1e299,
+    "huge_negative": -_Y12 * 1e299,
+    "huge_alternating": 1e300 * (-1.0) ** np.arange(12),
+    "largest_double": np.where(np.arange(12) % 3 == 0, _BIG, -_BIG),
+    "opposite_extremes": np.where(np.arange(12) < 6, -_BIG, _BIG) * (0.9 + 0.008 * np.arange(12)),
+    "tiny": _Y12 * 1e-300,
+    "subnormal": _Y12 * 5e-324,
+    "mixed_scales": np.array([1e-300, 1e300, 0.0, -1e300, 1.0, 1e-300, 2.0, 1e300, -1.0, 0.5, 1e12, -1e12]),
+    "tiny_vs_huge": np.r_[1e-300 * np.arange(1.0, 7.0), np.full(6, 1e300)],
+    "constant_huge": np.full(12, 1e300),
+}
+EXTREME_SESSIONS = {
+    "ordinary": np.arange(1.0, 13.0),
+    "offset_1e15": 1e15 + np.arange(12.0),
+    "spaced_1e200": 1e200 * np.arange(1.0, 13.0),
+    "spaced_1e-300": 1e-300 * np.arange(1.0, 13.0),
+    "near_max": _BIG * np.linspace(0.5, 1.0, 12),
+}
+
+
+def extreme_observations() -> tuple[pd.DataFrame, np.ndarray]:
+    """Every outcome series on every session spacing, as AB (6 + 6) and ABAB (3 + 3 + 3 + 3)."""
+    layouts = {"AB": np.repeat([1, 2], 6), "ABAB": np.repeat([1, 2, 3, 4], 3)}
+    rows, rhos, k = [], [], 0
+    for s_name, sessions in EXTREME_SESSIONS.items():
+        for y_name, y in EXTREME_OUTCOMES.items():
+            for design, phase in layouts.items():
+                k += 1
+                direction = ["increase", "decrease", None][k % 3]
+                scale = ["count", "other", "percent"][k % 3]
+                for i in range(12):
+                    rows.append({"case_key": f"{s_name}/{y_name}/{design}", "session": sessions[i], "outcome": y[i],
+                                 "phase_index": int(phase[i]), "condition": "baseline" if phase[i] % 2 else "treatment",
+                                 "design": design, "desired_direction": direction, "outcome_scale": scale})
+                rhos.append([np.nan, 0.3, 0.0][k % 3])
+    return pd.DataFrame(rows), np.array(rhos)
+
+
+def _finite_or_nan_with_reason(frame: pd.DataFrame, what: str, skip=()) -> None:
+    reason_cols = [c for c in frame.columns if c == "reason" or c.endswith("_reason") or "_reason_" in c]
+    floats = [c for c in frame.columns if frame[c].dtype.kind == "f" and c not in skip]
+    values = frame[floats].to_numpy(dtype=float)
+    assert not np.isinf(values).any(), f"{what}: infinite values in {[c for c in floats if np.isinf(frame[c]).any()]}"
+    reasons = frame[reason_cols].fillna("").astype(str).agg("".join, axis=1).to_numpy()
+    bad = np.isnan(values).any(axis=1) & (reasons == "")
+    assert not bad.any(), f"{what}: NaN without a reason in rows {np.flatnonzero(bad)[:5]}"
+
+
+@pytest.mark.filterwarnings("error")
+def test_values_near_float_limits_batch_equals_per_case():
+    obs, rho = extreme_observations()
+    ref_cases, ref_contrasts, ref_trends = reference(obs, rho)
+    cases, contrasts = case_effects_batch(obs, rho)
+    trends = baseline_trends_batch(obs)
+    # source: per-case reference path (case_effect_sizes, baseline_trends), itself checked in
+    # tests/test_effect_sizes.py and tests/test_trend.py on the same kinds of series
+    assert_frames_equal(cases, ref_cases[CASE_LEVEL_COLUMNS], "extreme case_level")
+    assert_frames_equal(contrasts, ref_contrasts, "extreme per_contrast")
+    assert_frames_equal(trends, ref_trends, "extreme trends")
+    _finite_or_nan_with_reason(cases, "extreme case_level")
+    _finite_or_nan_with_reason(contrasts, "extreme per_contrast")
+    # the exact Mann-Kendall p-value is NaN by definition with ties
+    _finite_or_nan_with_reason(trends, "extreme trends", skip=("mann_kendall_p_value_exact",))
+    # the scaled paths were exercised: numerical_failure where a value is not representable
+    assert contrasts["smd_reason_baseline_sd"].str.contains(R.NUMERICAL_FAILURE).any()
+    assert trends["theil_sen_reason"].str.contains(R.NUMERICAL_FAILURE).any()
+    assert trends["ols_reason"].str.contains(R.NUMERICAL_FAILURE).any()
+    assert np.isfinite(contrasts.loc[contrasts["case_key"].str.contains("/huge/"), "smd_pooled_sd"]).all()

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import itertools
 import math
+import sys
+from dataclasses import fields
 
 import numpy as np
 import pytest
@@ -11,6 +13,8 @@ from scipy import special, stats
 
 from audit import reasons as R
 from audit.effect_sizes import (
+    MeanDifferenceTest,
+    StandardizedMeanDifference,
     bound_rho,
     case_effect_sizes,
     contrast_effect_sizes,
@@ -436,3 +440,139 @@ def test_high_rho_makes_effective_sizes_too_small_for_t():
     c = mean_difference_test([1, 2, 3, 2], [5, 6, 7, 6], "increase", rho=0.95)
     assert math.isnan(c.welch_p_value_adjusted) and c.welch_reason_adjusted == R.TOO_FEW_POINTS
     assert math.isnan(c.pooled_p_value_adjusted) and c.pooled_reason_adjusted == R.TOO_FEW_POINTS
+
+
+# ------------------------------------------------------------------------------------------------
+# Values near the float limits: finite, or NaN with a reason of the same result; never inf
+# ------------------------------------------------------------------------------------------------
+
+BIG = sys.float_info.max
+A6 = np.array([3.0, 4.0, 2.0, 5.0, 3.5, 4.5])
+B6 = np.array([8.0, 9.5, 7.0, 8.5, 10.0, 9.0])
+EXTREME_CONTRASTS = {
+    "huge": (A6 * 1e299, B6 * 1e299),
+    "huge_negative": (-A6 * 1e299, -B6 * 1e299),
+    "largest_double": (np.array([BIG, -BIG, -BIG, BIG, -BIG, -BIG]), np.array([BIG, -BIG, -BIG, BIG, -BIG, -BIG])),
+    "opposite_extremes": (-BIG * np.array([0.9, 0.95, 1.0]), BIG * np.array([0.9, 0.95, 1.0])),
+    "mixed_scales": (np.array([1e-300, 1e300, 0.0, -1e300, 1.0, 1e-300]), np.array([2.0, 1e300, -1.0, 0.5, 1e12, -1e12])),
+    "tiny_vs_huge": (np.array([1e-300, 2e-300, 3e-300]), np.full(3, 1e300)),
+    "tiny": (A6 * 1e-300, B6 * 1e-300),
+    "subnormal": (A6 * 5e-324, B6 * 5e-324),
+    "constant_huge": (np.full(4, 1e300), np.full(4, 1e300)),
+}
+
+
+def _reasons_for(obj, name: str) -> list[str]:
+    """The reason fields of obj that must explain a NaN in its field `name`."""
+    rs = {f.name: getattr(obj, f.name) for f in fields(obj) if "reason" in f.name}
+    if isinstance(obj, StandardizedMeanDifference):
+        if name == "mean_difference":
+            return [rs["reason_baseline_sd"], rs["reason_pooled_sd"]]
+        return [rs["reason_pooled_sd"] if "pooled" in name else rs["reason_baseline_sd"]]
+    if isinstance(obj, MeanDifferenceTest):
+        if name == "mean_difference":
+            return list(rs.values())
+        kind = "welch" if name.startswith("welch") else "pooled"
+        return [rs[f"{kind}_reason_adjusted" if name.endswith("adjusted") else f"{kind}_reason"]]
+    if "adjusted" in name and "reason_adjusted" in rs:
+        return [rs["reason_adjusted"]]
+    return [rs["reason"]]
+
+
+def _check_result(obj, where: str) -> None:
+    for f in fields(obj):
+        v = getattr(obj, f.name)
+        if not isinstance(v, (float, np.floating)):
+            continue
+        assert not math.isinf(v), f"{where}: {type(obj).__name__}.{f.name} is infinite"
+        if math.isnan(v):
+            assert all(_reasons_for(obj, f.name)), f"{where}: {type(obj).__name__}.{f.name} NaN without a reason"
+
+
+@pytest.mark.filterwarnings("error")
+@pytest.mark.parametrize("name", list(EXTREME_CONTRASTS))
+@pytest.mark.parametrize("direction, scale", [("increase", "count"), ("decrease", "other"), (None, "percent")])
+def test_contrast_near_float_limits_finite_or_nan_with_reason(name, direction, scale):
+    # the house rule (DEVELOPERS.md: degenerate input gives NaN plus a reason code, never raises)
+    a, b = EXTREME_CONTRASTS[name]
+    c = contrast_effect_sizes(a, b, direction, scale, rho=0.3)
+    for obj in (c.pnd, c.nap, c.tau, c.tau_u, c.lrr, c.smd, c.mean_difference):
+        _check_result(obj, name)
+
+
+@pytest.mark.filterwarnings("error")
+def test_standardized_mean_difference_is_scale_free_near_float_limits():
+    # SMDs and t statistics are ratios (scale-free by definition): data multiplied by 2**k (exact)
+    # give the same values up to rounding; SDs and mean differences scale by 2**k
+    ref = contrast_effect_sizes(A6, B6, "increase", "count", rho=0.3)
+    for k in (-1000, -990, 990, 1000):
+        c = contrast_effect_sizes(A6 * 2.0**k, B6 * 2.0**k, "increase", "count", rho=0.3)
+        for key in ("smd_baseline_sd", "smd_baseline_sd_hedges", "smd_pooled_sd", "smd_pooled_sd_hedges"):
+            assert getattr(c.smd, key) == pytest.approx(getattr(ref.smd, key), rel=1e-13), key
+        assert c.smd.sd_baseline == pytest.approx(ref.smd.sd_baseline * 2.0**k, rel=1e-15)
+        assert c.smd.sd_pooled == pytest.approx(ref.smd.sd_pooled * 2.0**k, rel=1e-13)
+        assert c.smd.mean_difference == ref.smd.mean_difference * 2.0**k
+        md, md0 = c.mean_difference, ref.mean_difference
+        for key in ("welch_t", "welch_df", "welch_p_value", "welch_p_value_adjusted", "pooled_t", "pooled_p_value"):
+            assert getattr(md, key) == pytest.approx(getattr(md0, key), rel=1e-12), key
+        assert md.welch_se == pytest.approx(md0.welch_se * 2.0**k, rel=1e-13)
+        assert c.lrr.lrr_improvement == pytest.approx(ref.lrr.lrr_improvement, abs=1e-12)
+        assert c.lrr.lrr_variance == pytest.approx(ref.lrr.lrr_variance, rel=1e-13)
+        assert c.lrr.sd_treatment == pytest.approx(ref.lrr.sd_treatment * 2.0**k, rel=1e-15)
+        assert (c.nap.nap, c.tau.p_value, c.tau_u.tau_u) == (ref.nap.nap, ref.tau.p_value, ref.tau_u.tau_u)
+        assert c.smd.reason_baseline_sd == c.mean_difference.welch_reason == c.lrr.reason == R.OK
+
+
+@pytest.mark.filterwarnings("error")
+def test_values_beyond_the_largest_double_are_nan_with_numerical_failure():
+    a, b = EXTREME_CONTRASTS["largest_double"]
+    c = contrast_effect_sizes(a, b, "increase", "count")
+    # SD of +-1.8e308 values exceeds the largest double: NaN; the SMD (a ratio) is still given
+    assert math.isnan(c.smd.sd_baseline) and math.isnan(c.smd.sd_pooled) and math.isnan(c.lrr.sd_baseline)
+    assert R.NUMERICAL_FAILURE in c.smd.reason_baseline_sd and R.NUMERICAL_FAILURE in c.smd.reason_pooled_sd
+    assert c.smd.mean_difference == 0.0 and c.smd.smd_pooled_sd == 0.0 and c.smd.smd_baseline_sd == 0.0
+    assert c.mean_difference.welch_p_value == 1.0  # t = 0
+    # its standard error, sqrt(2 s^2 / 6) = 0.60 of the largest double, is representable
+    assert c.mean_difference.welch_se == pytest.approx(BIG * (np.std([1.0, -1, -1, 1, -1, -1], ddof=1) / np.sqrt(3)))
+    assert c.mean_difference.welch_reason == R.OK
+    assert c.lrr.mean_baseline == pytest.approx(-BIG / 3.0, rel=1e-15)
+    # mean difference of about 3.4e308: NaN, while the SMD and t statistic are finite
+    a, b = EXTREME_CONTRASTS["opposite_extremes"]
+    c = contrast_effect_sizes(a, b, "increase", "count")
+    assert math.isnan(c.smd.mean_difference) and math.isnan(c.mean_difference.mean_difference)
+    assert np.isfinite(c.smd.smd_pooled_sd) and c.smd.smd_pooled_sd > 0
+    assert np.isfinite(c.mean_difference.welch_t) and c.mean_difference.welch_t > 0
+    assert R.NUMERICAL_FAILURE in c.mean_difference.welch_reason
+    # SMD and t of about 1e600 (SD 1e-300 against a difference of 1e300): NaN, numerical_failure
+    a, b = EXTREME_CONTRASTS["tiny_vs_huge"]
+    c = contrast_effect_sizes(a, b, "increase", "count")
+    assert math.isnan(c.smd.smd_baseline_sd) and c.smd.reason_baseline_sd == R.NUMERICAL_FAILURE
+    assert math.isnan(c.mean_difference.welch_t) and c.mean_difference.welch_reason == R.NUMERICAL_FAILURE
+    assert c.smd.sd_baseline == pytest.approx(1e-300, rel=1e-12)
+
+
+def _case_reason(case: dict, key: str) -> str:
+    if key.startswith("rho_"):
+        return case["rho_reason"]
+    for prefix in ("pnd", "nap", "tau_u", "tau", "lrr", "smd"):
+        if key.startswith(prefix):
+            return case[f"{prefix}_reason"]
+    return case["mean_difference_reason_adjusted" if "adjusted" in key else "mean_difference_reason"]
+
+
+@pytest.mark.filterwarnings("error")
+@pytest.mark.parametrize("name", list(EXTREME_CONTRASTS))
+@pytest.mark.parametrize("rho", [None, 0.3])
+def test_case_effect_sizes_near_float_limits(name, rho):
+    a, b = EXTREME_CONTRASTS[name]
+    y = np.r_[a, b, a[::-1], b[::-1]]  # ABAB: two contrasts
+    phase = np.repeat([1, 2, 3, 4], [a.size, b.size, a.size, b.size])
+    cond = np.where(phase % 2 == 1, "baseline", "treatment")
+    per, case = case_effect_sizes(np.arange(1.0, y.size + 1), y, phase, cond, "ABAB", "increase", "count", rho=rho)
+    assert len(per) == 2
+    for key, v in case.items():
+        if isinstance(v, (float, np.floating)):
+            assert not math.isinf(v), f"{name}: {key} infinite"
+            # adjusted p-values are also NaN when rho is unavailable (rho_reason says why)
+            explained = _case_reason(case, key) or ("adjusted" in key and case["rho_reason"])
+            assert not math.isnan(v) or explained, f"{name}: {key} NaN without a reason"

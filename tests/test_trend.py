@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import math
+import sys
+from dataclasses import fields
 
 import numpy as np
 import pytest
@@ -302,3 +304,97 @@ def test_two_points_defined_where_possible():
     assert bt.ols_slope == 2.0 and math.isnan(bt.ols_slope_p_value)
     assert bt.theil_sen_slope == 2.0
     assert bt.mann_kendall_s == 1 and bt.mann_kendall_var_s == pytest.approx(2 * 1 * 9 / 18)
+
+
+# ------------------------------------------------------------------------------------------------
+# Sessions and outcomes near the float limits: finite, or NaN with the component's reason
+# ------------------------------------------------------------------------------------------------
+
+BIG = sys.float_info.max
+X6 = np.arange(1.0, 7.0)
+Y6 = np.array([3.0, 4.0, 2.0, 5.0, 3.5, 4.5])
+EXTREME_SESSIONS = {
+    "ordinary": X6,
+    "offset_1e15": 1e15 + X6,
+    "spaced_1e200": 1e200 * X6,
+    "spaced_1e-300": 1e-300 * X6,
+    "near_max": BIG * np.linspace(0.5, 1.0, 6),
+}
+EXTREME_OUTCOMES = {
+    "ordinary": Y6,
+    "huge": Y6 * 1e299,
+    "huge_negative": -Y6 * 1e299,
+    "largest_double": np.array([BIG, -BIG, -BIG, BIG, -BIG, -BIG]),
+    "mixed_scales": np.array([1e-300, 1e300, 0.0, -1e300, 1.0, 1e-300]),
+    "tiny": Y6 * 1e-300,
+    "constant_huge": np.full(6, 1e300),
+}
+# fields that are NaN by definition in some cases (exact p-value: only without ties)
+NOT_APPLICABLE = {"mann_kendall_p_value_exact"}
+
+
+def _component_reason(bt, name: str) -> str:
+    if name.startswith("ols_"):
+        return bt.ols_reason
+    if name.startswith("theil_sen_"):
+        return bt.theil_sen_reason
+    if "hamed_rao" in name:
+        return bt.hamed_rao_reason
+    return bt.mann_kendall_reason
+
+
+@pytest.mark.filterwarnings("error")
+@pytest.mark.parametrize("sessions", list(EXTREME_SESSIONS))
+@pytest.mark.parametrize("outcomes", list(EXTREME_OUTCOMES))
+def test_baseline_trend_near_float_limits_finite_or_nan_with_reason(sessions, outcomes):
+    # the house rule (DEVELOPERS.md: degenerate input gives NaN plus a reason code, never raises)
+    bt = baseline_trend(EXTREME_SESSIONS[sessions], EXTREME_OUTCOMES[outcomes], "increase")
+    for f in fields(bt):
+        v = getattr(bt, f.name)
+        if not isinstance(v, float) or f.name in NOT_APPLICABLE:
+            continue
+        assert not math.isinf(v), f"{f.name} infinite"
+        assert not math.isnan(v) or _component_reason(bt, f.name), f"{f.name} NaN without a reason"
+
+
+@pytest.mark.filterwarnings("error")
+@pytest.mark.parametrize("kx, ky", [(0, 990), (990, 0), (-1000, 0), (0, -1000), (-990, -1000), (1000, 1000)])
+def test_trend_scales_exactly_with_powers_of_two(kx, ky):
+    # exact scaling of sessions by 2**kx and outcomes by 2**ky: slopes scale by 2**(ky - kx),
+    # intercepts by 2**ky; t, p-values, Mann-Kendall and Hamed-Rao are scale-free (by definition)
+    ref = baseline_trend(X6, Y6, "increase")
+    bt = baseline_trend(X6 * 2.0**kx, Y6 * 2.0**ky, "increase")
+    assert bt.ols_slope == ref.ols_slope * 2.0 ** (ky - kx)
+    assert bt.ols_intercept == ref.ols_intercept * 2.0**ky
+    assert bt.ols_slope_se == ref.ols_slope_se * 2.0 ** (ky - kx)
+    assert bt.ols_slope_p_value == ref.ols_slope_p_value
+    assert bt.theil_sen_slope == ref.theil_sen_slope * 2.0 ** (ky - kx)
+    assert (bt.theil_sen_slope_low, bt.theil_sen_slope_high) == (
+        ref.theil_sen_slope_low * 2.0 ** (ky - kx), ref.theil_sen_slope_high * 2.0 ** (ky - kx))
+    assert bt.mann_kendall_p_value == ref.mann_kendall_p_value
+    assert bt.mann_kendall_hamed_rao_lag1_p_value == ref.mann_kendall_hamed_rao_lag1_p_value
+    assert bt.reason == ref.reason == R.OK
+
+
+@pytest.mark.filterwarnings("error")
+def test_slopes_beyond_the_largest_double_are_nan_with_numerical_failure():
+    # sessions 1e-300 apart, outcomes about 1e300: slopes about 1e600 are not representable
+    x, y = 1e-300 * X6, Y6 * 1e299
+    ols = ols_slope(x, y)
+    assert math.isnan(ols.ols_slope) and ols.reason == R.NUMERICAL_FAILURE
+    ref = ols_slope(X6, Y6)
+    assert ols.ols_slope_t == pytest.approx(ref.ols_slope_t, rel=1e-12)  # scale-free, still given
+    assert ols.ols_slope_p_value == pytest.approx(ref.ols_slope_p_value, rel=1e-12)
+    ts = theil_sen_slope(x, y)
+    assert math.isnan(ts.theil_sen_slope) and math.isnan(ts.theil_sen_slope_low) and ts.reason == R.NUMERICAL_FAILURE
+    hr = mann_kendall_hamed_rao_lag1(x, y)
+    assert hr.reason == R.OK and hr.mann_kendall_hamed_rao_lag1_p_value == mann_kendall_hamed_rao_lag1(
+        X6, Y6).mann_kendall_hamed_rao_lag1_p_value  # Sen-detrended ranks do not depend on the scale
+    bt = baseline_trend(x, y, "increase")
+    assert bt.moves_in_therapeutic_direction == "unknown"  # rule: unknown when the slope is undefined
+    # ordinary outcomes on sessions 1e-300 apart: a representable slope (was lost to underflow)
+    ols = ols_slope(x, Y6)
+    assert ols.ols_slope == pytest.approx(ref.ols_slope * 1e300, rel=1e-12) and ols.reason == R.OK
+    # sessions near the largest double (their mean is beyond it unscaled)
+    ols = ols_slope(EXTREME_SESSIONS["near_max"], Y6)
+    assert np.isfinite(ols.ols_slope) and np.isfinite(ols.ols_slope_p_value) and ols.reason == R.OK
