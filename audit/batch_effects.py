@@ -571,7 +571,8 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd,
                       scale_raw, rho_case, alpha, confidence) -> dict[str, np.ndarray]:
     """Every per-contrast column (ContrastEffectSizes.as_row keys) as arrays over contrasts.
 
-    seg_mean and seg_sd are in units of 2**seg_e (as audit.effect_sizes: scaled near the float limits)."""
+    seg_mean and seg_sd are in units of 2**seg_e (as audit.effect_sizes: scaled near the float
+    limits)."""
     m = len(con_case)
     na_i, nb_i = seg_len[bseg], seg_len[tseg]
     na, nb = na_i.astype(float), nb_i.astype(float)
@@ -691,7 +692,8 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd,
         b4 = ratio & ~badmean & posmean & two
         lrr = np.where(b3 | b4, np.log(mb) - np.log(ma), _NAN)
         # SD/mean ratios within a phase are scale-free: taken on the scaled values
-        lbc = np.where(b4, np.log(mb) + sb_s**2 / (2 * nb * mb_s**2) - np.log(ma) - sa_s**2 / (2 * na * ma_s**2), _NAN)
+        lbc = np.where(b4, np.log(mb) + sb_s**2 / (2 * nb * mb_s**2) - np.log(ma) - sa_s**2 / (2 * na * ma_s**2),
+                       _NAN)
         lvar = np.where(b4, sa_s**2 / (na * ma_s**2) + sb_s**2 / (nb * mb_s**2), _NAN)
         bad_lv = b4 & ~(np.isfinite(lbc) & np.isfinite(lvar))
         lbc, lvar = np.where(bad_lv, _NAN, lbc), np.where(bad_lv, _NAN, lvar)
@@ -1012,7 +1014,8 @@ def _case_level_frame(cols, ci, ncase, design, direction, assumed, scale_raw, rh
         out["mean_difference_reason"] = _with_code(np.where(
             np.isfinite(p), R.OK, cjoin(cols["mean_difference_welch_reason"])), md_overflow | bad_p)
         out["mean_difference_reason_adjusted"] = _with_code(np.where(
-            np.isfinite(pa), R.OK, cjoin(cols["mean_difference_welch_reason_adjusted"])), md_overflow | bad_pa)
+            np.isfinite(pa), R.OK, cjoin(cols["mean_difference_welch_reason_adjusted"])),
+            md_overflow | bad_pa)
 
     # cases without contrasts: NaN, flips None, reason fields absent (NaN in a frame of dicts)
     for key, v in out.items():
@@ -1224,7 +1227,7 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
         sst = (yc * yc).sum(axis=1)
         if n == 2:  # a line through two points: no residual degrees of freedom
             se, p = np.full(m, _NAN), np.full(m, _NAN)
-            ols_reason = np.where(overflow, R.join(R.NO_RESIDUAL_DF, R.NUMERICAL_FAILURE), R.NO_RESIDUAL_DF)
+            ols_reason = _with_code(np.full(m, R.NO_RESIDUAL_DF, dtype=object), overflow)
         else:
             degenerate = (ssr <= 1e-20 * sst) | (sst == 0.0)
             se_scaled = np.sqrt(ssr / df / sxx)
@@ -1256,9 +1259,8 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
             tsb = slopes[:, nt // 2] / 1.0
         else:
             tsb = (slopes[:, nt // 2 - 1] + slopes[:, nt // 2]) / 2.0
-        ts, bad_ts = unscale_checked(tsb, ey - ex)
-        ts_int_scaled = np.median(Ys, axis=1) - tsb * np.median(Xs, axis=1)
-        ts_int, bad_int = unscale_checked(ts_int_scaled, ey)
+        ts, _ = unscale_checked(tsb, ey - ex)
+        ts_int, _ = unscale_checked(np.median(Ys, axis=1) - tsb * np.median(Xs, axis=1), ey)
         a = 1.0 - confidence if confidence > 0.5 else confidence
         zq = stats.norm.ppf(a / 2.0)
         sigsq = (n * (n - 1) * (2 * n + 5) - ties_mk) / 18.0

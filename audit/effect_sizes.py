@@ -17,13 +17,14 @@ shrink variances below the independence ones, and lag-1 estimates from short ser
 downwards, so the adjustment is only ever conservative. rho = 0 reproduces the independence
 p-values exactly.
 
-Values near the float limits: each phase is divided by a power of two (the binary exponent of its
-largest |value|, ``audit.regression.binary_exponents``; exact) before means and sums of squares;
-differences and pooled variances of a contrast are formed in a common power-of-two frame and
-ratios (SMD, t statistics, LRR terms) are taken between scaled quantities. For ordinary data this
-gives the same bits as the unscaled arithmetic. A reported quantity beyond the largest double
-(an SD or mean difference of values near 1.8e308, a t statistic or SMD too large to represent) is
-NaN and the reason of its result gets ``numerical_failure``; scale-free results are still given.
+Values near the float limits: a phase whose largest |value| has a binary exponent beyond +-240
+(``audit.trend.scaling_exponents``) is divided by that power of two (exact) before means and sums
+of squares; differences and pooled variances of a contrast are formed in a common power-of-two
+frame, and ratios (SMD, t statistics, LRR terms) are taken between scaled quantities. Ordinary
+magnitudes are not scaled, so their results are unchanged to the bit. A reported quantity beyond
+the largest double (an SD or mean difference of values near 1.8e308, a t statistic or SMD too
+large to represent) is NaN and the reason of its result gets ``numerical_failure``; scale-free
+results are still given.
 """
 
 from __future__ import annotations
@@ -50,6 +51,7 @@ __all__ = [
     "MeanDifferenceTest",
     "ContrastEffectSizes",
     "resolve_direction",
+    "sd_frame",
     "bound_rho",
     "effective_sample_size",
     "hanley_mcneil_se",
@@ -148,8 +150,8 @@ _NO_EXPONENT = -(1 << 30)
 
 def sd_frame(sd_a, e_a, sd_b, e_b, fallback):
     """Binary exponent F of the larger of two SDs given as sd_a * 2**e_a and sd_b * 2**e_b (F =
-    fallback where neither is positive; 0 within +-SAFE_EXPONENT); works element-wise on arrays. Pooled variances formed in
-    units of 2**(2F) neither overflow nor lose the smaller SD to underflow."""
+    fallback where neither is positive; 0 within +-SAFE_EXPONENT of audit.trend); element-wise on
+    arrays. Pooled variances in units of 2**(2F) neither overflow nor lose the smaller SD."""
     def exponent(sd, e):
         sd = np.asarray(sd, dtype=float)
         pos = sd > 0
@@ -1147,10 +1149,11 @@ def _aggregate(results: list[ContrastEffectSizes], alpha: float) -> dict:
 
     # mean difference: simple mean, Welch-Satterthwaite over contrasts
     md = np.array([r.mean_difference.mean_difference for r in results], float)
-    out["mean_difference"], md_overflow = _scaled_mean(md[np.isfinite(md)]) if np.isfinite(md).any() else (_NAN, False)
+    out["mean_difference"], md_overflow = (_scaled_mean(md[np.isfinite(md)]) if np.isfinite(md).any()
+                                           else (_NAN, False))
 
     def combined_welch(se_field: str, df_field: str) -> tuple[float, bool]:
-        """(p, not representable); standard errors scaled by 2**-g (g: binary exponent of the
+        """(p, not representable); standard errors scaled by 2**-g (g: scaling exponent of the
         largest), exact, so their squares and fourth powers neither overflow nor underflow."""
         se_c = np.array([getattr(r.mean_difference, se_field) for r in results], float)
         df_c = np.array([getattr(r.mean_difference, df_field) for r in results], float)

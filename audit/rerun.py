@@ -213,8 +213,14 @@ def _canonical(observations: pd.DataFrame) -> pd.DataFrame:
         if pd.api.types.is_bool_dtype(s) or pd.api.types.is_numeric_dtype(s):
             out[col] = pd.Series(s.to_numpy(dtype=float, na_value=np.nan), dtype="float64")
         else:
-            values = [("\0NA" if v is None or (isinstance(v, float) and np.isnan(v)) or v is pd.NA else str(v))
-                      for v in s.to_numpy(dtype=object)]
+            arr = s.to_numpy(dtype=object)
+            missing = pd.isna(arr)
+            if pd.api.types.infer_dtype(arr, skipna=True) in ("string", "empty"):  # text: str(v) is v
+                values = arr.copy()
+                values[missing] = "\0NA"
+            else:
+                values = [("\0NA" if v is None or (isinstance(v, float) and np.isnan(v)) or v is pd.NA else str(v))
+                          for v in arr]
             out[col] = pd.Series(values, dtype=object)
     return pd.DataFrame(out)
 

@@ -72,7 +72,7 @@ def _finite_pair(x, y) -> tuple[np.ndarray, np.ndarray, str]:
 
 
 # Values whose binary exponent is within +-SAFE_EXPONENT are used unscaled by the effect sizes:
-# their squares and fourth powers (over phase sizes up to ~2**60) stay normal doubles.
+# their squares and fourth powers (also divided by a squared phase size up to 2**30) stay normal.
 SAFE_EXPONENT = 240
 
 

@@ -141,6 +141,14 @@ def _as_text(values: pd.Series) -> pd.Series:
         text = str(v).strip()
         return text or None
 
+    arr = values.to_numpy(dtype=object)
+    if pd.api.types.infer_dtype(arr, skipna=True) in ("string", "empty"):  # text cells (the CSV path)
+        missing = pd.isna(arr)
+        out = np.full(arr.shape, None, dtype=object)
+        stripped = pd.Series(arr[~missing], dtype=object).str.strip().to_numpy(dtype=object, copy=True)
+        stripped[stripped == ""] = None
+        out[~missing] = stripped
+        return pd.Series(out, index=values.index, dtype=object)
     return pd.Series([one(v) for v in values.tolist()], index=values.index, dtype=object)
 
 

@@ -366,9 +366,10 @@ def extreme_observations() -> tuple[pd.DataFrame, np.ndarray]:
                 direction = ["increase", "decrease", None][k % 3]
                 scale = ["count", "other", "percent"][k % 3]
                 for i in range(12):
+                    condition = "baseline" if phase[i] % 2 else "treatment"
                     rows.append({"case_key": f"{s_name}/{y_name}/{design}", "session": sessions[i], "outcome": y[i],
-                                 "phase_index": int(phase[i]), "condition": "baseline" if phase[i] % 2 else "treatment",
-                                 "design": design, "desired_direction": direction, "outcome_scale": scale})
+                                 "phase_index": int(phase[i]), "condition": condition, "design": design,
+                                 "desired_direction": direction, "outcome_scale": scale})
                 rhos.append([np.nan, 0.3, 0.0][k % 3])
     return pd.DataFrame(rows), np.array(rhos)
 
@@ -377,7 +378,8 @@ def _finite_or_nan_with_reason(frame: pd.DataFrame, what: str, skip=()) -> None:
     reason_cols = [c for c in frame.columns if c == "reason" or c.endswith("_reason") or "_reason_" in c]
     floats = [c for c in frame.columns if frame[c].dtype.kind == "f" and c not in skip]
     values = frame[floats].to_numpy(dtype=float)
-    assert not np.isinf(values).any(), f"{what}: infinite values in {[c for c in floats if np.isinf(frame[c]).any()]}"
+    inf = [c for c in floats if np.isinf(frame[c]).any()]
+    assert not inf, f"{what}: infinite values in {inf}"
     reasons = frame[reason_cols].fillna("").astype(str).agg("".join, axis=1).to_numpy()
     bad = np.isnan(values).any(axis=1) & (reasons == "")
     assert not bad.any(), f"{what}: NaN without a reason in rows {np.flatnonzero(bad)[:5]}"
