@@ -194,16 +194,25 @@ def _run_pipeline(args, paths, store, config: AuditConfig, progress: Progress) -
         raise UsageError(f"--lock-timeout must not be negative, got {lock_timeout}")
     if Path(store).exists() and not Path(store).is_dir():
         raise UsageError(f"--store {store} is a file; give a folder for the results store")
+    force = bool(getattr(args, "force", False))
     try:
         if getattr(args, "no_prefect", False):
             if runner_spec:
                 raise UsageError("--task-runner needs Prefect; leave out --no-prefect")
             return run_audit(paths, store, config, progress=progress, batch_size=batch_size, with_report=with_report,
-                             lock_timeout=lock_timeout)
+                             lock_timeout=lock_timeout, force=force)
+        if not force:  # nothing new: no flow run (and no Prefect server) needed
+            from audit.rerun import find_inputs, unchanged_run
+
+            same = unchanged_run(store, *find_inputs(paths), config, with_report=with_report)
+            if same is not None:
+                return same
         # Prefect lives in flows/ (audit/ stays a plain library): imported only here.
+        from flows import embedded
         from flows.settings import configure
 
         configure(home=getattr(args, "prefect_home", None), verbose=args.verbose)
+        embedded.begin()  # the embedded server starts while the imports below run
         from flows.review import run_review, task_runner_from_spec
 
         try:
@@ -213,7 +222,7 @@ def _run_pipeline(args, paths, store, config: AuditConfig, progress: Progress) -
         # the flow loads the config file itself (its parameters stay plain data for deployments)
         return run_review(paths, store, alpha=getattr(args, "alpha", None), config_file=getattr(args, "config", None),
                           batch_size=batch_size, task_runner=runner, progress=progress, with_report=with_report,
-                          lock_timeout=lock_timeout)
+                          lock_timeout=lock_timeout, force=force)
     except InputError as exc:
         raise UsageError(str(exc)) from None
     except StoreError as exc:
@@ -461,6 +470,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--no-prefect", action="store_true",
                    help="run sequentially in this process without Prefect (same results)")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report")
+    p.add_argument("--force", action="store_true",
+                   help="run even when the latest run used the same input files, parameters and code version")
     _add_common(p)
     p.set_defaults(func=cmd_run)
 

@@ -565,10 +565,12 @@ def build_report_html(tables: dict[str, pd.DataFrame], cases: pd.DataFrame, obse
     counts = run_info.get("counts") or {}
     rows = [("run id", run_id), ("started", _when(run_info.get("started_at", ""))),
             ("finished", _when(run_info.get("finished_at", ""))), ("code version", run_info.get("code_version", "")),
+            ("pipeline version", counts.get("pipeline_version", "") if isinstance(counts, dict) else ""),
             ("input files", len(run_info.get("input_hashes") or {}))]
     rows += [(f"parameter: {k}", json.dumps(v, default=str) if isinstance(v, (dict, list)) else v)
              for k, v in (params.items() if isinstance(params, dict) else [])]
-    rows += [(f"count: {k}", v) for k, v in (counts.items() if isinstance(counts, dict) else [])]
+    rows += [(f"count: {k}", v) for k, v in (counts.items() if isinstance(counts, dict) else [])
+             if k != "pipeline_version"]
     add(_table(pd.DataFrame(rows, columns=["name", "value"]), [("name", "name", "text"), ("value", "value", "text")]))
     if notes is not None and len(notes):
         add("<h3>Summary notes</h3>")

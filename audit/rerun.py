@@ -21,6 +21,7 @@ import dataclasses
 import hashlib
 import importlib
 import inspect
+import json
 import logging
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -92,6 +93,7 @@ class RunSummary:
     input_problems: int
     tables: tuple[str, ...]
     report: Path | None = None
+    unchanged: bool = False  # nothing was run: the latest run already used these inputs (unchanged_run)
 
     @property
     def has_quarantine(self) -> bool:
@@ -101,6 +103,12 @@ class RunSummary:
     def closing_line(self) -> str:
         """One line for people: cases audited, reused, quarantined, flips and where the results are."""
         flips = "n/a" if self.flips is None else str(self.flips)
+        if self.unchanged:
+            text = (f"No change since run {self.run_id}: same input files (byte for byte), parameters and code "
+                    f"version, so nothing was recomputed (--force recomputes). That run audited "
+                    f"{self.cases_audited} case(s); {self.cases_quarantined} quarantined; {flips} flip(s). "
+                    f"Results: {self.store}")
+            return text + (f"; report: {self.report}" if self.report is not None else "")
         text = (
             f"Audited {self.cases_audited} case(s): {self.cases_reused} reused, "
             f"{self.cases_computed} computed; {self.cases_quarantined} quarantined; "
@@ -123,6 +131,7 @@ class RunSummary:
             "rows_accepted": self.rows_accepted,
             "rows_quarantined": self.rows_quarantined,
             "flips": self.flips,
+            "unchanged": self.unchanged,
             "input_problems": self.input_problems,
             "tables": list(self.tables),
             "report": None if self.report is None else str(self.report),
@@ -150,6 +159,26 @@ class ReusePlan:
 
 
 # ----------------------------------------------------------------------------------- hashing
+
+
+def pipeline_version() -> str:
+    """Digest of every source file of the packages audit and schemas (and audit's data files).
+
+    Unlike :func:`code_version` (per-case statistics only), any edit to ingest, validation, the
+    summary or the report changes it; :func:`unchanged_run` uses it to decide that a whole run
+    would come out the same.
+    """
+    base = Path(__file__).resolve().parent.parent
+    h = hashlib.sha256(__version__.encode())
+    for package in ("audit", "schemas"):
+        root = base / package
+        for path in sorted(p for p in root.rglob("*") if p.is_file() and "__pycache__" not in p.parts
+                           and p.suffix != ".pyc"):
+            h.update(str(path.relative_to(base)).encode())
+            h.update(b"\0")
+            h.update(path.read_bytes())
+            h.update(b"\0")
+    return h.hexdigest()[:16]
 
 
 def _audit_imports(path: Path) -> set[str]:
@@ -370,6 +399,57 @@ def read_and_hash(path: str | Path, config: AuditConfig) -> tuple[FileRead, str]
     return read, digest
 
 
+def input_file_hashes(files: Sequence[str | Path]) -> dict[str, str]:
+    """Input file -> SHA-256 of its bytes, keyed as the run record keys them ('' if unreadable)."""
+    out: dict[str, str] = {}
+    for path in files:
+        try:
+            out[str(Path(path))] = file_sha256(path)
+        except OSError:
+            out[str(Path(path))] = ""
+    return out
+
+
+def unchanged_run(store_path: str | Path, files: Sequence[str | Path], path_problems: Sequence[FileProblem],
+                  config: AuditConfig, version: str | None = None, with_report: bool = True) -> RunSummary | None:
+    """The latest committed run, as a RunSummary with ``unchanged`` set, when it used exactly these
+    input files (same paths and bytes), the same parameters and the same code (``code_version``
+    and ``pipeline_version``), and no path problems now; else None.  Then a new run would reproduce it, so nothing needs computing.
+    When ``with_report`` and the run's report file is missing, it is written."""
+    if path_problems or not (Path(store_path) / "runs.parquet").is_file():
+        return None
+    store = ResultsStore(store_path)
+    try:
+        info = store.run_info("latest")
+    except (LookupError, OSError, ValueError):
+        return None
+    version = code_version() if version is None else version
+    counts = info.get("counts") or {}
+    if str(info.get("code_version")) != version or counts.get("pipeline_version") != pipeline_version():
+        return None
+    if info.get("parameters") != json.loads(json.dumps(config.as_parameters(), sort_keys=True, default=str)):
+        return None
+    digests = input_file_hashes(files)
+    if "" in digests.values() or info.get("input_hashes") != digests:
+        return None
+    run_id = str(info["run_id"])
+    report = Path(store_path) / f"sced-audit-report-{run_id}.html"
+    if not report.is_file():
+        report = None
+        if with_report:
+            fn = _optional("audit.report", "write_report")
+            report = Path(fn(store.path, run=run_id)) if fn is not None else None
+    flips = counts.get("flips")
+    return RunSummary(
+        run_id=run_id, store=store.path, cases_audited=int(counts.get("cases_audited", 0)),
+        cases_reused=int(counts.get("cases_audited", 0)), cases_computed=0,
+        cases_quarantined=int(counts.get("cases_quarantined", 0)), rows_read=int(counts.get("rows_read", 0)),
+        rows_accepted=int(counts.get("rows_accepted", 0)), rows_quarantined=int(counts.get("rows_quarantined", 0)),
+        flips=None if flips is None else int(flips), input_problems=int(counts.get("input_problems", 0)),
+        tables=tuple(info.get("tables") or ()), report=report, unchanged=True,
+    )
+
+
 def combine_reads(reads: list[FileRead], path_problems: list[FileProblem], config: AuditConfig) -> ReviewInput:
     """Prepare the rows of all files together; InputError when no case passed validation."""
     review = combine(reads, path_problems, config)
@@ -524,6 +604,7 @@ def write_run(store: ResultsStore, review: ReviewInput, plan: ReusePlan, tables:
         "rows_quarantined": int(prep.rows_quarantined),
         "files_read": len(review.files),
         "input_problems": len(review.path_problems),
+        "pipeline_version": pipeline_version(),
     }
     flips = _flips(cases)
     if flips is not None:
@@ -578,8 +659,12 @@ def run_audit(
     lock_timeout: float = 60,
     with_summary: bool = True,
     with_report: bool = True,
+    force: bool = False,
 ) -> RunSummary:
     """The whole audit, sequentially and without Prefect: intake, reuse, diagnose, store, summary, report.
+
+    Unless ``force``, nothing is run when the latest run used the same input files, parameters
+    and code version (:func:`unchanged_run`); its summary is returned with ``unchanged`` set.
 
     progress: called as progress(stage, done, total) with stage "read" (files) or "diagnose"
     (batches of cases). diagnose: the diagnostics function (default
@@ -588,6 +673,8 @@ def run_audit(
     """
     config = config or AuditConfig()
     files, path_problems = find_inputs(paths)
+    if not force and (same := unchanged_run(store_path, files, path_problems, config, with_report=with_report)):
+        return same
     reads = []
     hashes: dict[str, str] = {}
     for i, path in enumerate(files, start=1):

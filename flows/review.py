@@ -30,6 +30,7 @@ if "prefect" not in sys.modules and not _settings._OURS:
 
 from prefect import flow, task  # noqa: E402
 from prefect.cache_policies import NONE  # noqa: E402
+from prefect.task_runners import ThreadPoolTaskRunner  # noqa: E402
 from prefect.futures import as_completed  # noqa: E402
 
 from audit import rerun  # noqa: E402
@@ -86,6 +87,12 @@ def find_files(inputs: list[str]) -> tuple[list[Path], list[FileProblem]]:
     return rerun.find_inputs(inputs)
 
 
+@task(name="check-unchanged", **_io)
+def check_unchanged(store: str, files: list[Path], path_problems: list, config: AuditConfig,
+                    with_report: bool) -> rerun.RunSummary | None:
+    return rerun.unchanged_run(store, files, path_problems, config, with_report=with_report)
+
+
 @task(name="read-input-file", task_run_name="read {path.name}", **_io)
 def read_file(path: Path, config: AuditConfig) -> tuple[FileRead, str]:
     """Read and check one input file, with the SHA-256 of its bytes."""
@@ -138,7 +145,14 @@ def _report_progress(stage: str, done: int, total: int) -> None:
         _progress(stage, done, total)
 
 
-@flow(name=FLOW_NAME, persist_result=False, log_prints=False)
+# Default runner: one worker thread, so diagnose batches run one after another.  The engine's
+# batch work is many small array operations that hold the GIL; several threads at once were
+# measured slower than one (2-core machine, 20,000 cases: 32 s with Prefect's default of
+# cpu_count + 4 threads against 14 s in one).  Parallel work: --task-runner dask (processes).
+DEFAULT_TASK_RUNNER = ThreadPoolTaskRunner(max_workers=1)
+
+
+@flow(name=FLOW_NAME, persist_result=False, log_prints=False, task_runner=DEFAULT_TASK_RUNNER)
 def audit_review(
     inputs: list[str],
     store: str,
@@ -148,8 +162,13 @@ def audit_review(
     with_summary: bool = True,
     with_report: bool = True,
     lock_timeout: float = 60.0,
+    force: bool = False,
 ) -> rerun.RunSummary:
     """Audit every case under ``inputs`` into the results store ``store`` (reusing unchanged cases).
+
+    Unless ``force``, the run stops at once when the latest run used the same input files,
+    parameters and code version (``audit.rerun.unchanged_run``): a scheduled rerun without new
+    data costs a few file hashes.
 
     alpha overrides the config file's [analysis] alpha; config_file is a TOML file with column
     and phase-label maps (see audit.config); with_summary / with_report run the review summary
@@ -159,6 +178,10 @@ def audit_review(
     if batch_size < 1:
         raise ValueError(f"batch_size must be at least 1, got {batch_size}")
     files, path_problems = find_files(list(inputs))
+    if not force:
+        same = check_unchanged(store, files, path_problems, config, with_report)
+        if same is not None:
+            return same
     reads: list[FileRead] = []
     hashes: dict[str, str] = {}
     for i, path in enumerate(files, start=1):
@@ -225,15 +248,14 @@ def prefect_api() -> Iterator[str]:
     if url:
         yield url
         return
-    from prefect.server.api.server import SubprocessASGIServer
+    from flows import embedded
 
-    server = SubprocessASGIServer()  # one per process (Prefect keeps it; stopped at exit)
-    server.start()
+    url = embedded.api_url()  # one per process (started early by the CLI; stopped at exit)
     previous = os.environ.get("PREFECT_API_URL")
-    os.environ["PREFECT_API_URL"] = server.api_url
+    os.environ["PREFECT_API_URL"] = url
     try:
-        with temporary_settings(updates={PREFECT_API_URL: server.api_url}):
-            yield server.api_url
+        with temporary_settings(updates={PREFECT_API_URL: url}):
+            yield url
     finally:
         if previous is None:
             os.environ.pop("PREFECT_API_URL", None)
@@ -253,6 +275,7 @@ def run_review(
     with_summary: bool = True,
     with_report: bool = True,
     lock_timeout: float = 60.0,
+    force: bool = False,
 ) -> rerun.RunSummary:
     """Run :func:`audit_review` in this process (embedded server unless PREFECT_API_URL is set).
 
@@ -276,6 +299,7 @@ def run_review(
                 with_summary=with_summary,
                 with_report=with_report,
                 lock_timeout=float(lock_timeout),
+                force=bool(force),
             )
     finally:
         _progress = previous

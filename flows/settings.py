@@ -217,3 +217,4 @@ def strip_tracebacks() -> None:
                     handler.removeFilter(f)
             elif not ours:
                 handler.addFilter(_NoTraceback())
+

@@ -56,9 +56,14 @@ def test_run_closing_line_and_exit_1_with_quarantine(tmp_path, capsys):
         assert int(m[5]) == int(cases["flip_any"].sum())
     assert "diagnosing cases:" in err and "Traceback" not in err
 
+    # the same inputs again: nothing to do, no new run, the same exit code
     code = main(["run", str(FIXTURE / "data"), "--store", str(store), "--no-prefect", "--no-report"])
+    out = capsys.readouterr().out
+    assert code == 1 and out.startswith(f"No change since run {m[7]}: same input files")
+    assert len(ResultsStore(store).runs()) == 1
+    code = main(["run", str(FIXTURE / "data"), "--store", str(store), "--no-report", "--no-prefect", "--force"])
     m2 = _closing(capsys.readouterr().out)
-    assert code == 1 and (int(m2[2]), int(m2[3])) == (n_ok, 0)  # second run: everything reused
+    assert code == 1 and (int(m2[2]), int(m2[3])) == (n_ok, 0)  # forced second run: everything reused
 
     assert main(["runs", "--store", str(store)]) == 0
     out = capsys.readouterr().out
@@ -132,10 +137,11 @@ def test_demo_writes_a_store_inside_the_demo_folder(tmp_path, capsys):
     m = _closing(out)
     assert Path(m[6]) == folder / "store" and (folder / "store" / "runs.parquet").is_file()
     assert "Caution" in out and len(out.splitlines()) < 15  # short: no per-file validation table
-    # a second demo in the same folder replaces the data and reuses the unchanged cases
+    # a second demo in the same folder writes the same (invented) data again: nothing new to run
     assert main(["demo", "--dir", str(folder), "--no-prefect"]) == 0
-    m2 = _closing(capsys.readouterr().out)
-    assert int(m2[2]) == int(m[1]) and len(ResultsStore(folder / "store").runs()) == 2
+    out = capsys.readouterr().out
+    assert f"No change since run {m[7]}" in out and "Caution" in out
+    assert len(ResultsStore(folder / "store").runs()) == 1
 
 
 def test_progress_lines_when_not_a_terminal(capsys):

@@ -113,7 +113,10 @@ def test_flow_rerun_reuses_every_case(flow_run, monkeypatch):
     store, first, _, _ = flow_run
     counting = Counting()
     monkeypatch.setattr(audit.diagnose, "diagnose_cases", counting)
-    second = review_flow.run_review([FIXTURE / "data"], store, batch_size=4, with_summary=False, with_report=False)
+    same = review_flow.run_review([FIXTURE / "data"], store, batch_size=4, with_summary=False, with_report=False)
+    assert same.unchanged and same.run_id == first.run_id  # nothing new: the flow stops after hashing
+    second = review_flow.run_review([FIXTURE / "data"], store, batch_size=4, with_summary=False, with_report=False,
+                                    force=True)
     assert counting.calls == []  # nothing recomputed
     assert (second.cases_reused, second.cases_computed) == (first.cases_audited, 0)
     a, b = _tables(store, first.run_id), _tables(store, second.run_id)

@@ -187,7 +187,7 @@ def test_run_audit_writes_a_complete_run(tmp_path):
 def test_second_run_reuses_every_case(tmp_path):
     first = _run([FIXTURE / "data"], tmp_path / "store")
     counting = Counting()
-    second = _run([FIXTURE / "data"], tmp_path / "store", diagnose=counting)
+    second = _run([FIXTURE / "data"], tmp_path / "store", diagnose=counting, force=True)
     assert counting.calls == []  # no statistics at all
     assert (second.cases_reused, second.cases_computed) == (first.cases_audited, 0)
     store = ResultsStore(tmp_path / "store")
@@ -197,6 +197,31 @@ def test_second_run_reuses_every_case(tmp_path):
         a = store.table(table, run=first.run_id).drop(columns="run")
         b = store.table(table, run=second.run_id).drop(columns="run")
         pd.testing.assert_frame_equal(a, b)
+
+
+def test_unchanged_inputs_run_nothing_until_something_changes(tmp_path, data_copy, monkeypatch):
+    store = tmp_path / "store"
+    first = _run([data_copy], store)
+    counting = Counting()
+    same = _run([data_copy], store, diagnose=counting)
+    assert same.unchanged and same.run_id == first.run_id and counting.calls == []
+    assert (same.cases_audited, same.cases_computed, same.cases_quarantined) == \
+        (first.cases_audited, 0, first.cases_quarantined)
+    assert same.closing_line().startswith(f"No change since run {first.run_id}")
+    assert len(ResultsStore(store).runs()) == 1  # nothing written
+    # any change makes a real run: parameters, the code (pipeline version), a file's bytes
+    assert not _run([data_copy], store, AuditConfig(alpha=0.01)).unchanged
+    _run([data_copy], store)  # back to alpha 0.05: a run (the latest differs), then unchanged again
+    assert _run([data_copy], store).unchanged
+    monkeypatch.setattr(rerun, "pipeline_version", lambda: "edited")
+    assert not _run([data_copy], store).unchanged
+    monkeypatch.undo()
+    _run([data_copy], store)
+    target = data_copy / "f1_more.tsv"
+    target.write_text(target.read_text(encoding="utf-8") + "\n", encoding="utf-8")  # one more byte
+    assert not _run([data_copy], store).unchanged
+    assert _run([data_copy], store, force=False).unchanged
+    assert not _run([data_copy], store, force=True).unchanged
 
 
 def test_changing_one_file_recomputes_only_its_cases(tmp_path, data_copy):
