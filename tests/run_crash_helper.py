@@ -41,7 +41,7 @@ def run() -> int:
                 pause(ready)
 
         store_mod._fault_point = hook
-    return main(["run", inputs, "--store", store, "--no-prefect", "--no-report", "--lock-timeout", lock_timeout])
+    return main(["run", inputs, "--store", store, "--no-prefect", "--no-report", "--force", "--lock-timeout", lock_timeout])
 
 
 if __name__ == "__main__":

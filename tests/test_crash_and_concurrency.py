@@ -63,7 +63,7 @@ def review(tmp_path):
     inputs = tmp_path / "in"
     shutil.copytree(FIXTURE, inputs)
     store = tmp_path / "store"
-    assert main(["run", str(inputs), "--store", str(store), "--no-prefect", "--no-report"]) == 1
+    assert main(["run", str(inputs), "--store", str(store), "--no-prefect", "--no-report", "--force"]) == 1
     first = ResultsStore(store)
     return inputs, store, first.latest_run_id(), first.table("cases")
 
@@ -84,7 +84,7 @@ def test_kill_during_run_leaves_previous_run_intact(review, tmp_path, point):
     after = ResultsStore(store)
     assert after.latest_run_id() == first_id
     pd.testing.assert_frame_equal(after.table("cases"), first_cases)
-    assert main(["run", str(inputs), "--store", str(store), "--no-prefect", "--no-report"]) == 1
+    assert main(["run", str(inputs), "--store", str(store), "--no-prefect", "--no-report", "--force"]) == 1
     final = ResultsStore(store)
     assert final.latest_run_id() != first_id and len(final.runs()) == 2
     _committed_folders_match_ledger(store)
@@ -101,12 +101,12 @@ def test_second_writer_is_refused_with_a_clear_message_and_reader_sees_previous_
         reader = ResultsStore(store)
         assert reader.latest_run_id() == first_id
         pd.testing.assert_frame_equal(reader.table("cases"), first_cases)
-        code = main(["run", str(inputs), "--store", str(store), "--no-prefect", "--no-report", "--lock-timeout", "1"])
+        code = main(["run", str(inputs), "--store", str(store), "--no-prefect", "--no-report", "--force", "--lock-timeout", "1"])
         err = capsys.readouterr().err
         assert code == 2
         assert "lock" in err.lower() and str(store) in err and "Traceback" not in err
     finally:
         _kill(proc)
     assert ResultsStore(store).latest_run_id() == first_id
-    assert main(["run", str(inputs), "--store", str(store), "--no-prefect", "--no-report"]) == 1
+    assert main(["run", str(inputs), "--store", str(store), "--no-prefect", "--no-report", "--force"]) == 1
     _committed_folders_match_ledger(store)
