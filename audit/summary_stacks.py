@@ -14,7 +14,10 @@ for at most ``stacked.CASE_BLOCK`` cases and used ``stacked.STACK_ROWS`` rows at
 
 from __future__ import annotations
 
+import os
 from collections.abc import Iterator
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -101,24 +104,48 @@ def ar1_from_r1(stacks: ReviewStacks, r1: np.ndarray) -> tuple[AR1FromResidualLa
     at_bound = np.zeros(K, dtype=bool)
     reason = np.full(K, R.OK, dtype=object)
     covered = np.zeros(K, dtype=bool)
-    with np.errstate(all="ignore"):
-        for st in stacks.stacks():
+
+    def one(st: _Stack):
+        with np.errstate(all="ignore"):
             first, du = _unique_rows(st.X)
             des = _Designs(st.X[first])
             ok = des.ok[du] & (des.p >= 1)
             if not ok.any():
-                continue
+                return None
             rows = np.flatnonzero(ok)
-            N = des.N[du[rows]]
-            Lm = lag_matrix(des.n)
-            Au = np.swapaxes(des.N, 1, 2) @ Lm @ des.N
-            res = ar1_from_residual_lag1_rows(r1[st.idx[rows]], N, Au[du[rows]], des.r1_var[du[rows]])
-            good = res.reason != R.NUMERICAL_FAILURE
-            take = st.idx[rows[good]]
-            rho[take], var[take] = res.rho[good], res.variance[good]
-            at_bound[take], reason[take] = res.at_bound[good], res.reason[good]
-            covered[take] = True
+            Au = np.swapaxes(des.N, 1, 2) @ lag_matrix(des.n) @ des.N
+            res = ar1_from_residual_lag1_rows(r1[st.idx[rows]], des.N[du[rows]], Au[du[rows]], des.r1_var[du[rows]])
+            return st.idx[rows], res
+
+    # the eigendecompositions and large array operations release the GIL: stacks in a few threads
+    for found in _map_bounded(one, stacks.stacks()):
+        if found is None:
+            continue
+        where, res = found
+        good = res.reason != R.NUMERICAL_FAILURE
+        take = where[good]
+        rho[take], var[take] = res.rho[good], res.variance[good]
+        at_bound[take], reason[take] = res.at_bound[good], res.reason[good]
+        covered[take] = True
     return AR1FromResidualLag1(rho, var, at_bound, EXACT, reason), covered
+
+
+def _threads() -> int:
+    return max(1, min(4, os.cpu_count() or 1))
+
+
+def _map_bounded(fn, items):
+    """fn over items in a few threads, results in order, at most 2 x threads items in flight
+    (``Executor.map`` would take every stack, and its arrays, at once)."""
+    workers = _threads()
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        pending = deque()
+        for item in items:
+            pending.append(pool.submit(fn, item))
+            if len(pending) >= 2 * workers:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
 
 
 def dw_power_at(stacks: ReviewStacks, rho: float, alpha: float) -> np.ndarray:
@@ -128,8 +155,9 @@ def dw_power_at(stacks: ReviewStacks, rho: float, alpha: float) -> np.ndarray:
     if not np.isfinite(rho):
         return out
     rho = float(np.clip(rho, -RHO_BOUND, RHO_BOUND))
-    with np.errstate(all="ignore"):
-        for st in stacks.stacks():
+
+    def one(st: _Stack):
+        with np.errstate(all="ignore"):
             first, du = _unique_rows(st.X)
             des = _Designs(st.X[first])
             power = _power_setup(des, rho, float(alpha))
@@ -138,7 +166,10 @@ def dw_power_at(stacks: ReviewStacks, rho: float, alpha: float) -> np.ndarray:
                     _pad(des.mu[power.polish_rows] - power.c[power.polish_rows, None], max(des.p, 1)))
             else:
                 probs = np.empty(0)
-            out[st.idx] = power.finish(probs, des)[du]
+            return st.idx, power.finish(probs, des)[du]
+
+    for idx, values in _map_bounded(one, stacks.stacks()):
+        out[idx] = values
     return out
 
 
@@ -148,7 +179,10 @@ def gls_at(stacks: ReviewStacks, rhos: np.ndarray) -> tuple[np.ndarray, np.ndarr
     rhos = np.asarray(rhos, dtype=float)
     K, J = rhos.shape
     est, se, p = (np.full((K, J), np.nan) for _ in range(3))
-    for st in stacks.stacks():
-        e_, s_, p_ = gls_at_rhos(st.Y, st.X, st.C, rhos[st.idx], st.n_transitions)
-        est[st.idx], se[st.idx], p[st.idx] = e_, s_, p_
+
+    def one(st: _Stack):
+        return st.idx, gls_at_rhos(st.Y, st.X, st.C, rhos[st.idx], st.n_transitions)
+
+    for idx, (e_, s_, p_) in _map_bounded(one, stacks.stacks()):
+        est[idx], se[idx], p[idx] = e_, s_, p_
     return est, se, p
