@@ -50,10 +50,18 @@ class FileRead:
     rows: pd.DataFrame
     problems: list[FileProblem] = field(default_factory=list)
     details: dict[str, str] = field(default_factory=dict)  # encoding, delimiter, decimal, sheets
+    n_rows_released: int | None = None  # set by release_rows: how many rows ``rows`` held
 
     @property
     def rows_read(self) -> int:
-        return len(self.rows) + sum(p.n_rows for p in self.problems)
+        held = len(self.rows) if self.n_rows_released is None else self.n_rows_released
+        return held + sum(p.n_rows for p in self.problems)
+
+    def release_rows(self) -> None:
+        """Drop the raw rows (keeping their count and columns) once they have been prepared."""
+        if self.n_rows_released is None:
+            self.n_rows_released = len(self.rows)
+            self.rows = self.rows.iloc[0:0]
 
 
 def find_input_files(paths: list[str | Path]) -> tuple[list[Path], list[FileProblem]]:

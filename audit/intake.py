@@ -58,12 +58,19 @@ def read_files(paths: list[str | Path]) -> tuple[list[Path], list[FileProblem]]:
 
 
 def combine(reads: list[FileRead], path_problems: list[FileProblem], config: AuditConfig) -> ReviewInput:
-    """Prepare the rows of all files together (a case may span files)."""
+    """Prepare the rows of all files together (a case may span files).
+
+    Each FileRead's raw rows are released once they are concatenated (``FileRead.release_rows``):
+    only the prepared tables stay in memory.
+    """
     frames = [r.rows for r in reads if len(r.rows)]
     raw = pd.concat(frames, ignore_index=True) if frames else reads[0].rows.iloc[0:0] if reads else pd.DataFrame()
+    del frames
     problems = [p for r in reads for p in r.problems]
     if raw.empty and not reads:
         raise InputError("nothing to read")
+    for r in reads:  # the rows now live in ``raw``: drop each file's copy (counts are kept)
+        r.release_rows()
     prepared = prepare_rows(raw, problems, config)
     return ReviewInput(prepared=prepared, files=reads, path_problems=path_problems)
 

@@ -698,4 +698,5 @@ def run_audit(
     if with_summary:
         tables.update(summary_tables(tables, config.alpha, review.prepared.cases))
     summary = write_run(store, review, plan, tables, config, hashes, lock_timeout)
+    del tables, results, review, plan  # the report reads what it needs back from the store
     return write_report(store, summary) if with_report else summary

@@ -197,8 +197,11 @@ def audit_review(
     for done, _ in enumerate(as_completed(futures), start=1):
         _report_progress("diagnose", done, len(batches))
     results = [f.result() for f in futures]
+    del futures
     tables = summarize(review, plan, results, config.alpha, with_summary)
+    del results
     summary = write_store(store, review, plan, tables, config, hashes, lock_timeout)
+    del tables, review, plan, reads  # the report reads what it needs back from the store
     return report(store, summary) if with_report else summary
 
 
