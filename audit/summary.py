@@ -802,7 +802,7 @@ SCREENING_COLUMNS = ["study", "cases_audited", "cases_quarantined", "cases_meeti
 
 
 def _plural(n: int, word: str) -> str:
-    return f"{n} {word}" + ("" if n == 1 else "s")
+    return f"{int(n):,} {word}" + ("" if n == 1 else "s")
 
 
 def _screening_note(row: dict, verdicts: list[dict]) -> str:
@@ -900,12 +900,12 @@ def _answer(row: dict) -> str:
         if n is None or not np.isfinite(n) or n == 0:
             continue
         k = int(row[f"n_flips_{alt}"])
-        bits.append(f"{k} of {int(n)} ({_pct(row[f'flip_rate_{alt}'])}, 95% CI {_pct(row[f'flip_ci_lower_{alt}'])} "
+        bits.append(f"{k:,} of {int(n):,} ({_pct(row[f'flip_rate_{alt}'])}, 95% CI {_pct(row[f'flip_ci_lower_{alt}'])} "
                     f"to {_pct(row[f'flip_ci_upper_{alt}'])}) {words}")
     if bits:
         parts.append(f"Modelling serial dependence changes the case-level decision at alpha = {row['alpha']:g} in "
                      + "; ".join(bits) + ".")
-    parts.append(f"{row['n_verdict_changes']} of {row['n_study_outcomes']} study outcomes change their verdict under "
+    parts.append(f"{int(row['n_verdict_changes']):,} of {int(row['n_study_outcomes']):,} study outcomes change their verdict under "
                  "the three-demonstrations standard (common practice).")
     if np.isfinite(row["mean_dw_power"]):
         parts.append(f"The exact Durbin-Watson test has mean power {_pct(row['mean_dw_power'])} against an AR(1) of "
