@@ -269,7 +269,8 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
                      f"case quarantined because row(s) {rows} of {part['source_file'].iloc[0]} are invalid "
                      "(see the row entries); fix or remove those rows")
 
-    good = frame[~bad_mask].copy()
+    # (copy-on-write: without bad rows ``good`` shares the columns until one of them is changed)
+    good = frame[~bad_mask] if bad_mask.any() else frame
     # the rest needs only where each raw row came from (quarantine entries)
     frame = frame[["source_file", "source_sheet", "source_row", "study", "case", "series", "case_key"]]
 
@@ -469,7 +470,7 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
         if col != "source_row":
             adj[col] = adj[col].astype(str)
 
-    observations = accepted[OBSERVATION_COLUMNS].copy()
+    observations = accepted[OBSERVATION_COLUMNS]  # copy-on-write: columns are copied only when changed
     observations["tier"] = observations["tier"].astype(object)
     for col in ("session", "outcome"):
         observations[col] = observations[col].astype("float64")
@@ -491,9 +492,32 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
     return result
 
 
+_VALIDATE_CHUNK_ROWS = 200_000  # outgoing tables are validated in slices of whole cases (memory)
+
+
 def _typed(df: pd.DataFrame, schema) -> pd.DataFrame:
-    """Validate an outgoing table (a failure here is a bug in sced-audit, not in the input)."""
-    return schema.validate(df, lazy=True)
+    """Validate an outgoing table (a failure here is a bug in sced-audit, not in the input).
+
+    A long table whose cases are contiguous is validated in slices of whole cases (the schemas'
+    table-wide checks are per case), so pandera's temporary copies stay slice-sized."""
+    n = len(df)
+    if n <= _VALIDATE_CHUNK_ROWS or "case_key" not in df.columns:
+        return schema.validate(df, lazy=True)
+    keys = df["case_key"].to_numpy()
+    starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]])
+    if len(starts) != len(pd.unique(keys)):  # a case in several places: validate whole
+        return schema.validate(df, lazy=True)
+    cuts = [0]
+    for start in starts[1:]:
+        if start - cuts[-1] >= _VALIDATE_CHUNK_ROWS:
+            cuts.append(int(start))
+    cuts.append(n)
+    parts = [schema.validate(df.iloc[a:b], lazy=True) for a, b in zip(cuts[:-1], cuts[1:])]
+    if len(parts) == 1:
+        return parts[0]
+    out = pd.concat(parts, ignore_index=True)
+    out.index = df.index
+    return out
 
 
 def _accepted_cases(accepted: pd.DataFrame, adj_counts: pd.Series) -> pd.DataFrame:

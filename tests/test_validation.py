@@ -208,3 +208,25 @@ def test_accounting_invariant_on_mixed_input(tmp_path):
     assert prep.rows_read == len(lines) + 1
     assert_accounting(prep)
     assert prep.rows_accepted == 11 and len(prep.cases) == 1
+
+
+def test_outgoing_tables_validated_in_slices_of_whole_cases(tmp_path, monkeypatch):
+    import pandera.pandas as pa
+
+    import audit.validation as V
+
+    rows = []
+    for i in range(6):
+        rows += ab_rows(study="S", case=f"P{i}")
+    write_csv(tmp_path / "a.csv", rows)
+    whole = load_review([tmp_path], AuditConfig()).prepared
+    monkeypatch.setattr(V, "_VALIDATE_CHUNK_ROWS", 15)  # several slices, each of whole cases
+    sliced = load_review([tmp_path], AuditConfig()).prepared
+    pd.testing.assert_frame_equal(sliced.observations, whole.observations)
+    pd.testing.assert_frame_equal(sliced.cases, whole.cases)
+    # a per-case rule broken in a later slice is still found
+    bad = whole.observations.copy()
+    last = bad["case_key"].iloc[-1]
+    bad.loc[bad.index[-1], "session"] = bad.loc[bad["case_key"] == last, "session"].iloc[0]
+    with pytest.raises(pa.errors.SchemaErrors):
+        V._typed(bad, Observations)
