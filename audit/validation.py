@@ -512,12 +512,11 @@ def _typed(df: pd.DataFrame, schema) -> pd.DataFrame:
         if start - cuts[-1] >= _VALIDATE_CHUNK_ROWS:
             cuts.append(int(start))
     cuts.append(n)
-    parts = [schema.validate(df.iloc[a:b], lazy=True) for a, b in zip(cuts[:-1], cuts[1:])]
-    if len(parts) == 1:
-        return parts[0]
-    out = pd.concat(parts, ignore_index=True)
-    out.index = df.index
-    return out
+    if len(cuts) == 2:
+        return schema.validate(df, lazy=True)
+    for a, b in zip(cuts[:-1], cuts[1:]):  # every check, slice by slice (raises on a failure)
+        schema.validate(df.iloc[a:b], lazy=True)
+    return schema.to_schema().coerce_dtype(df)  # then the dtypes once, for the whole table
 
 
 def _accepted_cases(accepted: pd.DataFrame, adj_counts: pd.Series) -> pd.DataFrame:
