@@ -158,15 +158,23 @@ def _batch_objective(mom: _Moments, method: str, rho: np.ndarray):
     Minv = np.linalg.inv(Mxx)
     logdet = np.linalg.slogdet(Mxx)[1]
     dlogdet = np.einsum("mij,mji->m", Minv, dMxx)
+    _, rss, drss = gls_rss_pieces(Minv, dMxx, mom.qe1, mom.qe2, mom.ee0, mom.ee1, mom.ee2, rho)
+    return _objective_from_pieces(method, mom.n, mom.k, rho, rss, drss, logdet, dlogdet)
+
+
+def gls_rss_pieces(Minv, dM, qe1, qe2, ee0, ee1, ee2, rho):
+    """b = M^-1 m, RSS* = (Pe)'Pe - m'M^-1 m and dRSS*/drho, row i at rho[i], from the cross
+    products of the Prais-Winsten form (m = (PQ)'Pe = -rho qe1 + rho^2 qe2, (Pe)'Pe = ee0 - rho ee1
+    + rho^2 ee2; ``_Moments``).  Minv = M(rho)^-1 and dM = dM/drho, (m, k, k)."""
     r = rho[:, None]
-    mxe = -r * mom.qe1 + r**2 * mom.qe2
-    dmxe = -mom.qe1 + 2.0 * r * mom.qe2
-    mee = mom.ee0 - rho * mom.ee1 + rho**2 * mom.ee2
-    dmee = -mom.ee1 + 2.0 * rho * mom.ee2
+    mxe = -r * qe1 + r**2 * qe2
+    dmxe = -qe1 + 2.0 * r * qe2
+    mee = ee0 - rho * ee1 + rho**2 * ee2
+    dmee = -ee1 + 2.0 * rho * ee2
     b = np.einsum("mij,mj->mi", Minv, mxe)
     rss = mee - np.sum(mxe * b, axis=1)
-    drss = dmee - 2.0 * np.sum(b * dmxe, axis=1) + np.einsum("mi,mij,mj->m", b, dMxx, b)
-    return _objective_from_pieces(method, mom.n, mom.k, rho, rss, drss, logdet, dlogdet)
+    drss = dmee - 2.0 * np.sum(b * dmxe, axis=1) + np.einsum("mi,mij,mj->m", b, dM, b)
+    return b, rss, drss
 
 
 def _brackets(f_grid: np.ndarray, d_grid: np.ndarray):

@@ -44,6 +44,7 @@ from audit.trend import (
     MANN_KENDALL_EXACT_MAX_N,
     BaselineTrend,
     baseline_trend,
+    mann_kendall_exact_sf,
     normalize_direction,
     scaled_ratio,
     scaling_exponents,
@@ -175,6 +176,20 @@ def _join_rows(parts: list[np.ndarray]) -> np.ndarray:
             v = cache[k] = R.join(*k.split("\x00"))
         out[i] = v
     return out
+
+
+def _smd_columns(md_s, sd_s, e_diff, enough, j):
+    """SMD = mean difference / SD (both scaled; ``scaled_ratio``), its Hedges-corrected value (x j)
+    and reason: too_few_points without ``enough`` points or a finite j, zero_variance for SD 0,
+    numerical_failure when the ratio is not representable."""
+    ok = enough & (sd_s > 0)
+    smd, bad = scaled_ratio(md_s, sd_s, e_diff)
+    bad &= ok
+    ok &= ~bad
+    smd = np.where(ok, smd, _NAN)
+    reason = np.where(~enough, R.TOO_FEW_POINTS, np.where(~(sd_s > 0), R.ZERO_VARIANCE, np.where(
+        bad, R.NUMERICAL_FAILURE, np.where(np.isfinite(j), R.OK, R.TOO_FEW_POINTS)))).astype(object)
+    return smd, np.where(ok, smd * j, _NAN), reason
 
 
 def _with_code(codes: np.ndarray, mask: np.ndarray, code: str = R.NUMERICAL_FAILURE) -> np.ndarray:
@@ -731,22 +746,8 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd,
         sp, bad_sp = unscale_checked(sp_s, e_sd)
         j_b = _cached(hedges_correction, (na_i - 1)[:, None]) if m else np.zeros(0)
         j_p = _cached(hedges_correction, df_p[:, None]) if m else np.zeros(0)
-        ok_b = (na_i >= 2) & (sa_s > 0)
-        smd_b, bad_b = scaled_ratio(md_s, sa_s, e_md - ea)
-        bad_b &= ok_b
-        ok_b &= ~bad_b
-        smd_b = np.where(ok_b, smd_b, _NAN)
-        smd_bh = np.where(ok_b, smd_b * j_b, _NAN)
-        reason_b = np.where(na_i < 2, R.TOO_FEW_POINTS, np.where(~(sa_s > 0), R.ZERO_VARIANCE, np.where(
-            bad_b, R.NUMERICAL_FAILURE, np.where(np.isfinite(j_b), R.OK, R.TOO_FEW_POINTS)))).astype(object)
-        ok_p = (df_p >= 1) & (sp_s > 0)
-        smd_p, bad_p = scaled_ratio(md_s, sp_s, e_md - e_sd)
-        bad_p &= ok_p
-        ok_p &= ~bad_p
-        smd_p = np.where(ok_p, smd_p, _NAN)
-        smd_ph = np.where(ok_p, smd_p * j_p, _NAN)
-        reason_p = np.where(df_p < 1, R.TOO_FEW_POINTS, np.where(~(sp_s > 0), R.ZERO_VARIANCE, np.where(
-            bad_p, R.NUMERICAL_FAILURE, np.where(np.isfinite(j_p), R.OK, R.TOO_FEW_POINTS)))).astype(object)
+        smd_b, smd_bh, reason_b = _smd_columns(md_s, sa_s, e_md - ea, na_i >= 2, j_b)
+        smd_p, smd_ph, reason_p = _smd_columns(md_s, sp_s, e_md - e_sd, df_p >= 1, j_p)
         reason_b = _with_code(reason_b, bad_md | bad_sa)
         reason_p = _with_code(reason_p, bad_md | bad_sp)
         f["smd"] = dict(mean_difference=md, sd_baseline=sa, sd_pooled=sp, smd_baseline_sd=smd_b,
@@ -1048,32 +1049,6 @@ def _case_level_frame(cols, ci, ncase, design, direction, assumed, scale_raw, rh
 # ----------------------------------------------------------------------------------------------
 
 _TREND_FIELDS = [fl.name for fl in fields(BaselineTrend)]
-_MK_EXACT_PROBS: dict[int, np.ndarray] = {}
-_MK_EXACT_SF: dict[tuple[int, float], float] = {}
-
-
-def _mk_exact_sf(s: float, n: int) -> float:
-    """P(S >= s) for Kendall's S with n untied values (as audit.trend.mann_kendall_exact_sf), cached."""
-    key = (n, s)
-    hit = _MK_EXACT_SF.get(key)
-    if hit is not None:
-        return hit
-    probs = _MK_EXACT_PROBS.get(n)
-    if probs is None:
-        probs = np.array([1.0])
-        for k in range(2, n + 1):
-            new = np.zeros(probs.size + k - 1)
-            for j in range(k):
-                new[j: j + probs.size] += probs
-            probs = new / k
-        _MK_EXACT_PROBS[n] = probs
-    n0 = n * (n - 1) // 2
-    s_values = n0 - 2 * np.arange(probs.size)
-    val = float(min(1.0, probs[s_values >= s - 1e-9].sum()))
-    _MK_EXACT_SF[key] = val
-    return val
-
-
 def baseline_trends_batch(obs: pd.DataFrame, alpha: float = 0.05, confidence: float = 0.95) -> pd.DataFrame:
     """Baseline trend rows of all cases (= audit.trend.baseline_trends per case, concatenated).
 
@@ -1291,7 +1266,7 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
         exact = untied & varok
         if n <= MANN_KENDALL_EXACT_MAX_N and exact.any():
             s_abs, inv = np.unique(np.abs(s[exact]), return_inverse=True)
-            sf = np.array([min(1.0, 2.0 * _mk_exact_sf(float(v), n)) for v in s_abs])
+            sf = np.array([min(1.0, 2.0 * mann_kendall_exact_sf(float(v), n)) for v in s_abs])
             p_exact[exact] = sf[inv.ravel()]
         mk_reason = np.where(varok, R.OK, R.join(R.CONSTANT_SERIES, R.ZERO_VARIANCE)).astype(object)
         res["mann_kendall_s"][sel], res["mann_kendall_var_s"][sel] = s, var_s

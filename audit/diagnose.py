@@ -38,6 +38,7 @@ from audit.regression import (
     ols_contrast_batch,
     scale_rows,
     unscale,
+    unscale_effect_columns,
 )
 
 DEFAULT_POWER_RHO = 0.3
@@ -167,16 +168,7 @@ def diagnose_group(Y: np.ndarray, design: CaseDesign, alpha: float, supplied_rho
         for col in ("dw_p_positive", "dw_p_negative"):
             out[col] = np.where(dead, np.nan, out[col])
         out["dw_zone"] = np.where(dead, "unknown", out["dw_zone"])
-    overflow = np.zeros(m, dtype=bool)
-    for col in [c_ for c_ in out if c_.startswith("effect_") and c_.endswith(("_estimate", "_std_error"))]:
-        values = unscale(out[col], ex)
-        bad = np.isfinite(out[col]) & ~np.isfinite(values)  # beyond the float range in the data's units
-        out[col] = np.where(bad, np.nan, values)
-        overflow |= bad
-        reason_col = col.rsplit("_estimate", 1)[0].rsplit("_std_error", 1)[0] + "_reason"
-        if bad.any() and reason_col in out:
-            out[reason_col] = np.array([R.join(r, R.NUMERICAL_FAILURE) if b_ else r
-                                        for r, b_ in zip(out[reason_col], bad)], dtype=object)
+    overflow = unscale_effect_columns(out, ex)
     out["reason"] = np.array([R.join(a, b, c_, R.NUMERICAL_FAILURE if o else R.OK) for a, b, c_, o in zip(
         out["effect_ols_reason"], out["ar1_reml_reason"], r1["reason"].to_numpy(), overflow)], dtype=object)
     return pd.DataFrame(out)

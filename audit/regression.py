@@ -135,6 +135,24 @@ def unscale(values, e) -> np.ndarray:
         return np.ldexp(np.asarray(values, dtype=float), np.asarray(e))
 
 
+def unscale_effect_columns(out: dict, ex) -> np.ndarray:
+    """The ``effect_*_estimate`` / ``effect_*_std_error`` arrays of ``out`` back in the data's units
+    (``unscale``), in place.  A value beyond the float range becomes NaN and numerical_failure is
+    joined to its ``effect_*_reason`` (when ``out`` has one).  Returns the rows that overflowed."""
+    ex = np.asarray(ex)
+    overflow = np.zeros(ex.shape, dtype=bool)
+    for col in [c for c in out if c.startswith("effect_") and c.endswith(("_estimate", "_std_error"))]:
+        values = unscale(out[col], ex)
+        bad = np.isfinite(out[col]) & ~np.isfinite(values)
+        out[col] = np.where(bad, np.nan, values)
+        overflow |= bad
+        reason_col = col.rsplit("_estimate", 1)[0].rsplit("_std_error", 1)[0] + "_reason"
+        if bad.any() and reason_col in out:
+            out[reason_col] = np.array([R.join(r, R.NUMERICAL_FAILURE) if b else r
+                                        for r, b in zip(out[reason_col], bad)], dtype=object)
+    return overflow
+
+
 def design_reason(X: np.ndarray) -> str:
     """Reason code for a design that cannot be used (NaN, n <= k, rank < k), else ''."""
     X = _as_design(X)

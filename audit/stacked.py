@@ -39,7 +39,7 @@ from scipy import special
 from audit.asymptotic_tests import ljung_box_batch
 from audit.durbin_watson import dw_statistic_rows as _dw_rows, dw_zones as _zone
 from audit import reasons as R
-from audit.ar1 import _GRID, _brackets, _objective_from_pieces
+from audit.ar1 import _GRID, _brackets, _objective_from_pieces, gls_rss_pieces
 from audit.asymptotic_tests import ljung_box_default_lags
 from audit.durbin_watson import critical_bounds
 from audit.quadform import (
@@ -48,7 +48,7 @@ from audit.quadform import (
     prob_quadform_below_zero,
     ratio_quantile,
 )
-from audit.regression import newey_west_default_lags, series_reasons
+from audit.regression import newey_west_default_lags, series_reasons, unscale, unscale_effect_columns
 
 __all__ = ["diagnose_stack", "diagnose_designs", "diagnose_series", "case_design_stacks", "stack_groups",
            "gls_at_rhos", "DEFAULT_POWER_RHO"]
@@ -527,7 +527,7 @@ def gls_at_rhos(Y, X, C, rhos, n_transitions=None) -> tuple[np.ndarray, np.ndarr
         dead_case = np.broadcast_to(n_trans, (m,)) == 0
         for j in range(J):
             est, se, p, _, _ = cr.gls(np.nan_to_num(rhos[:, j]), 0.05)
-            est, se = np.ldexp(est, ex), np.ldexp(se, ex)
+            est, se = unscale(est, ex), unscale(se, ex)
             dead = dead_case | ~np.isfinite(rhos[:, j]) | ~np.isfinite(est) | ~np.isfinite(se)
             out[0][:, j] = np.where(dead, np.nan, est)
             out[1][:, j] = np.where(dead, np.nan, se)
@@ -705,14 +705,7 @@ class _AR1Rows:
         dM = -self.A1 + 2.0 * r * self.A2
         Minv, logdet = _spd_inverse(Mxx)
         dlogdet = np.einsum("mij,mji->m", Minv, dM)
-        rc = rho[:, None]
-        mxe = -rc * self.qe1 + rc**2 * self.qe2
-        dmxe = -self.qe1 + 2.0 * rc * self.qe2
-        mee = self.ee0 - rho * self.ee1 + rho**2 * self.ee2
-        dmee = -self.ee1 + 2.0 * rho * self.ee2
-        b = np.einsum("mij,mj->mi", Minv, mxe)
-        rss = mee - np.sum(mxe * b, axis=1)
-        drss = dmee - 2.0 * np.sum(b * dmxe, axis=1) + np.einsum("mi,mij,mj->m", b, dM, b)
+        b, rss, drss = gls_rss_pieces(Minv, dM, self.qe1, self.qe2, self.ee0, self.ee1, self.ee2, rho)
         return Minv, b, rss, drss, logdet, dlogdet
 
     def objective(self, reml: np.ndarray, rho: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -1137,16 +1130,7 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
         out["dw_p_positive"] = np.where(dead, np.nan, out["dw_p_positive"])
         out["dw_p_negative"] = np.where(dead, np.nan, out["dw_p_negative"])
         out["dw_zone"] = np.where(dead, "unknown", out["dw_zone"])
-    overflow = np.zeros(m, dtype=bool)
-    for col in [c_ for c_ in out if c_.startswith("effect_") and c_.endswith(("_estimate", "_std_error"))]:
-        values = np.ldexp(out[col], ex)  # back in the data's units; inf beyond the float range
-        bad = np.isfinite(out[col]) & ~np.isfinite(values)
-        out[col] = np.where(bad, np.nan, values)
-        overflow |= bad
-        reason_col = col.rsplit("_estimate", 1)[0].rsplit("_std_error", 1)[0] + "_reason"
-        if bad.any() and reason_col in out:
-            out[reason_col] = np.array([R.join(r, R.NUMERICAL_FAILURE) if b_ else r
-                                        for r, b_ in zip(out[reason_col], bad)], dtype=object)
+    overflow = unscale_effect_columns(out, ex)
     out["reason"] = _join_reasons(out["effect_ols_reason"], out["ar1_reml_reason"], r1_reason,
                                   np.where(overflow, R.NUMERICAL_FAILURE, R.OK).astype(object))
     return out

@@ -13,6 +13,8 @@ A slope, intercept or standard error beyond the largest double is NaN with reaso
 
 from __future__ import annotations
 
+import functools
+
 from dataclasses import asdict, dataclass
 
 import numpy as np
@@ -302,17 +304,26 @@ class MannKendall:
     reason: str
 
 
-def mann_kendall_exact_sf(s: float, n: int) -> float:
-    """P(S >= s) for Kendall's S under H0 with n untied values (Mahonian inversion distribution)."""
-    if n < 1:
-        return _NAN
-    # distribution of the number of inversions I (S = n(n-1)/2 - 2I), built by convolution
+@functools.lru_cache(maxsize=256)
+def _inversion_distribution(n: int) -> np.ndarray:
+    """P(I = i) of the number of inversions of n untied values (Mahonian), built by convolution."""
     probs = np.array([1.0])
     for k in range(2, n + 1):
         new = np.zeros(probs.size + k - 1)
         for j in range(k):
             new[j : j + probs.size] += probs
         probs = new / k
+    probs.flags.writeable = False  # shared by the cache
+    return probs
+
+
+@functools.lru_cache(maxsize=4096)
+def mann_kendall_exact_sf(s: float, n: int) -> float:
+    """P(S >= s) for Kendall's S under H0 with n untied values (Mahonian inversion distribution;
+    S = n(n-1)/2 - 2I).  Cached: the batch path asks for the same (s, n) many times."""
+    if n < 1:
+        return _NAN
+    probs = _inversion_distribution(n)
     n0 = n * (n - 1) // 2
     s_values = n0 - 2 * np.arange(probs.size)
     return float(min(1.0, probs[s_values >= s - 1e-9].sum()))
