@@ -50,7 +50,7 @@ __all__ = [
 RHO_BOUND = 0.95
 ROOT_XTOL = 1e-10  # tolerance on rho of both root finders
 _GRID = np.round(np.linspace(-RHO_BOUND, RHO_BOUND, 77), 6)  # step 0.025 (reference bracketing)
-_ILLINOIS_MAX_ITER = 100
+_SECANT_MAX_ITER = 100
 
 
 @functools.lru_cache(maxsize=4)
@@ -236,8 +236,8 @@ def _secant_roots(target, N, A, slope0):
     """Roots of f(rho) = E_rho[r1] - target in [-0.95, 0.95] for all rows at once (f increasing).
 
     Start: x0 = the first-order value (r1 - E_0[r1]) / slope0 clipped to +-0.9, and one Newton step
-    with the slope at 0; then secant steps kept inside the bracket known so far (bisection when a
-    step leaves it, Illinois-style).  A row whose root lies beyond a bound stops there once
+    with the slope at 0; then secant steps kept inside the bracket known so far (a step out of it
+    goes to the bound when f is not known there yet, else bisects the bracket).  A row whose root lies beyond a bound stops there once
     f(bound) has the sign that shows it (``at_bound``).  Converged when the step or the bracket
     is below ``ROOT_XTOL``.  Returns (root, at_bound, failed).
     """
@@ -255,7 +255,7 @@ def _secant_roots(target, N, A, slope0):
     failed = ~np.isfinite(f_prev)
     done = failed | (f_prev == 0)
     live = np.flatnonzero(~done)
-    for _ in range(_ILLINOIS_MAX_ITER):
+    for _ in range(_SECANT_MAX_ITER):
         if live.size == 0:
             break
         xl = x[live]

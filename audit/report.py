@@ -84,6 +84,8 @@ REFERENCES = [
 MAX_CASE_GRAPHS = 300  # case graphs drawn (flagged cases first when the review has more)
 MAX_FOREST_STUDIES = 50  # studies in the forest plot (those with most cases when there are more)
 MAX_TABLE_ROWS = 500  # rows of the long tables (screening, flips, per-study effects)
+# case flip columns shown in the report, with their names in words
+FLIP_COLUMNS = (("flip_gls_reml", "GLS own AR(1)"), ("flip_hac", "HAC"), ("flip_tau", "Tau adjusted"))
 
 DW_ZONE_WORDS = {
     "positive": "positive serial dependence",
@@ -323,7 +325,7 @@ def _cases_to_draw(cases: pd.DataFrame, verdicts: pd.DataFrame | None) -> tuple[
     if len(cases) <= MAX_CASE_GRAPHS:
         return cases, ""
     rank = np.full(len(cases), 2)
-    flip_cols = [c for c in ("flip_gls_reml", "flip_hac", "flip_tau") if c in cases]
+    flip_cols = [c for c, _ in FLIP_COLUMNS if c in cases]
     if flip_cols:
         flipped = np.zeros(len(cases), dtype=bool)
         for col in flip_cols:
@@ -346,7 +348,7 @@ def _cases_to_draw(cases: pd.DataFrame, verdicts: pd.DataFrame | None) -> tuple[
 def _flip_cases(cases: pd.DataFrame, shrink: pd.DataFrame | None) -> pd.DataFrame:
     c = cases.copy()
     flags = []
-    for col, name in (("flip_gls_reml", "GLS own AR(1)"), ("flip_hac", "HAC"), ("flip_tau", "Tau adjusted")):
+    for col, name in FLIP_COLUMNS:
         if col in c:
             flags.append((c[col].astype("boolean").fillna(False).to_numpy(dtype=bool), name))
     which = []

@@ -399,17 +399,6 @@ def read_and_hash(path: str | Path, config: AuditConfig) -> tuple[FileRead, str]
     return read, digest
 
 
-def input_file_hashes(files: Sequence[str | Path]) -> dict[str, str]:
-    """Input file -> SHA-256 of its bytes, keyed as the run record keys them ('' if unreadable)."""
-    out: dict[str, str] = {}
-    for path in files:
-        try:
-            out[str(Path(path))] = file_sha256(path)
-        except OSError:
-            out[str(Path(path))] = ""
-    return out
-
-
 def unchanged_run(store_path: str | Path, files: Sequence[str | Path], path_problems: Sequence[FileProblem],
                   config: AuditConfig, version: str | None = None, with_report: bool = True) -> RunSummary | None:
     """The latest committed run, as a RunSummary with ``unchanged`` set, when it used exactly these
@@ -429,7 +418,7 @@ def unchanged_run(store_path: str | Path, files: Sequence[str | Path], path_prob
         return None
     if info.get("parameters") != json.loads(json.dumps(config.as_parameters(), sort_keys=True, default=str)):
         return None
-    digests = input_file_hashes(files)
+    digests = input_hashes(files)
     if "" in digests.values() or info.get("input_hashes") != digests:
         return None
     run_id = str(info["run_id"])

@@ -324,25 +324,28 @@ def _groupings(frame: pd.DataFrame, columns=GROUPINGS):
             yield col, value, rows
 
 
-def _flip_counts(p_ind: np.ndarray, p_alt: np.ndarray, alpha: float) -> dict:
+def _flip_columns(p_ind: np.ndarray, p_alt: np.ndarray, codes: np.ndarray, size: int, alpha: float) -> dict:
+    """Per group (``codes`` in 0..size-1): cases with both p-values, significant under each, flips
+    (lost + gained), and the flip, lost and gained rates with Wilson intervals; arrays of ``size``."""
     ok = np.isfinite(p_ind) & np.isfinite(p_alt)
     sig_i = ok & (p_ind < alpha)
     sig_a = ok & (p_alt < alpha)
     lost = sig_i & ~sig_a
     gained = sig_a & ~sig_i
-    return {"n_cases": int(ok.sum()), "n_significant_independence": int(sig_i.sum()),
-            "n_significant_alternative": int(sig_a.sum()), "n_flips": int((lost | gained).sum()),
-            "n_lost": int(lost.sum()), "n_gained": int(gained.sum())}
 
+    def count(flags):
+        return np.bincount(codes, weights=flags, minlength=size).astype(np.int64)
 
-def _with_rates(row: dict, alpha: float) -> dict:
-    n = row["n_cases"]
-    for name, count in (("flip", "n_flips"), ("lost", "n_lost"), ("gained", "n_gained")):
-        lo, hi = wilson_interval(row[count], n, alpha)
-        row[f"{name}_rate"] = row[count] / n if n else math.nan
-        row[f"{name}_ci_lower"] = float(lo)
-        row[f"{name}_ci_upper"] = float(hi)
-    return row
+    n = count(ok)
+    out = {"n_cases": n, "n_significant_independence": count(sig_i), "n_significant_alternative": count(sig_a),
+           "n_flips": count(lost | gained), "n_lost": count(lost), "n_gained": count(gained)}
+    for name, key in (("flip", "n_flips"), ("lost", "n_lost"), ("gained", "n_gained")):
+        c = out[key]
+        lo, hi = wilson_interval(c, n, alpha)
+        out[f"{name}_rate"] = np.where(n > 0, c / np.maximum(n, 1), np.nan)
+        out[f"{name}_ci_lower"] = lo
+        out[f"{name}_ci_upper"] = hi
+    return out
 
 
 def _fmt(x, digits: int = 2) -> str:
@@ -513,32 +516,15 @@ def _group_codes(frame: pd.DataFrame, columns=GROUPINGS):
 
 
 def _flip_rates(cases: pd.DataFrame, alts: dict, alpha: float) -> pd.DataFrame:
-    """``_flip_counts`` and ``_with_rates`` for every alternative and group (counts by bincount)."""
+    """``_flip_columns`` for every alternative and grouping."""
     frame = cases[[c for c in GROUPINGS if c in cases.columns]]
     parts = []
     for alt, (p_ind, p_alt) in alts.items():
-        ok = np.isfinite(p_ind) & np.isfinite(p_alt)
-        sig_i = ok & (p_ind < alpha)
-        sig_a = ok & (p_alt < alpha)
-        lost = sig_i & ~sig_a
-        gained = sig_a & ~sig_i
         for group_by, values, codes in _group_codes(frame):
-            def count(flags, codes=codes, size=values.size):
-                return np.bincount(codes, weights=flags, minlength=size).astype(np.int64)
-            part = pd.DataFrame({"alternative": alt, "label": ALTERNATIVE_LABELS[alt], "group_by": group_by,
-                                 "group": values.astype(object), "n_cases": count(ok),
-                                 "n_significant_independence": count(sig_i),
-                                 "n_significant_alternative": count(sig_a), "n_flips": count(lost | gained),
-                                 "n_lost": count(lost), "n_gained": count(gained)})
-            n = part["n_cases"].to_numpy()
-            for name, cnt in (("flip", "n_flips"), ("lost", "n_lost"), ("gained", "n_gained")):
-                c = part[cnt].to_numpy()
-                lo, hi = wilson_interval(c, n, alpha)
-                with np.errstate(divide="ignore", invalid="ignore"):
-                    part[f"{name}_rate"] = np.where(n > 0, c / np.maximum(n, 1), np.nan)
-                part[f"{name}_ci_lower"] = lo
-                part[f"{name}_ci_upper"] = hi
-            parts.append(part)
+            part = {"alternative": alt, "label": ALTERNATIVE_LABELS[alt], "group_by": group_by,
+                    "group": values.astype(object)}
+            part.update(_flip_columns(p_ind, p_alt, codes, values.size, alpha))
+            parts.append(pd.DataFrame(part))
     cols = ["alternative", "label", "group_by", "group", "n_cases", "n_significant_independence",
             "n_significant_alternative", "n_flips", "flip_rate", "flip_ci_lower", "flip_ci_upper", "n_lost",
             "lost_rate", "lost_ci_lower", "lost_ci_upper", "n_gained", "gained_rate", "gained_ci_lower",
@@ -553,11 +539,11 @@ def _sensitivity(cases: pd.DataFrame, at_rho: DiagnoseAtRho, rhos, alpha: float)
     many = getattr(at_rho, "grid", None)
     results = many(rhos) if callable(many) else {float(r): at_rho(float(r)) for r in rhos}
     rows = []
+    one_group = np.zeros(len(cases), dtype=np.int64)
     for rho in rhos:
         res = _align(results[float(rho)], cases)
-        row = {"assumed_rho": float(rho)}
-        row.update(_flip_counts(p_ols, _num(res, "effect_gls_supplied_p_value"), alpha))
-        rows.append(_with_rates(row, alpha))
+        cols = _flip_columns(p_ols, _num(res, "effect_gls_supplied_p_value"), one_group, 1, alpha)
+        rows.append({"assumed_rho": float(rho), **{k: v[0] for k, v in cols.items()}})
     return pd.DataFrame(rows)
 
 

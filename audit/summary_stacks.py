@@ -49,6 +49,11 @@ class _Stack:
     C: np.ndarray  # (m, k) effect contrasts
     n_transitions: np.ndarray
 
+    def designs(self) -> tuple[_Designs, np.ndarray]:
+        """Design algebra once per distinct design of the stack, and each row's design."""
+        first, du = _unique_rows(self.X)
+        return _Designs(self.X[first]), du
+
 
 class ReviewStacks:
     """A review's observations as flat arrays sorted by case and session, with case positions."""
@@ -107,8 +112,7 @@ def ar1_from_r1(stacks: ReviewStacks, r1: np.ndarray) -> tuple[AR1FromResidualLa
 
     def one(st: _Stack):
         with np.errstate(all="ignore"):
-            first, du = _unique_rows(st.X)
-            des = _Designs(st.X[first])
+            des, du = st.designs()
             ok = des.ok[du] & (des.p >= 1)
             if not ok.any():
                 return None
@@ -158,8 +162,7 @@ def dw_power_at(stacks: ReviewStacks, rho: float, alpha: float) -> np.ndarray:
 
     def one(st: _Stack):
         with np.errstate(all="ignore"):
-            first, du = _unique_rows(st.X)
-            des = _Designs(st.X[first])
+            des, du = st.designs()
             power = _power_setup(des, rho, float(alpha))
             if power.polish_rows.size:
                 probs = prob_quadform_below_zero(
