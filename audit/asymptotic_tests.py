@@ -27,6 +27,7 @@ from audit.regression import _as_batch, _as_design, binary_exponents, design_rea
 __all__ = [
     "BreuschGodfrey",
     "LjungBox",
+    "bg_lm_rows",
     "breusch_godfrey",
     "breusch_godfrey_batch",
     "ljung_box",
@@ -115,26 +116,33 @@ def breusch_godfrey_batch(E, X, y=None) -> pd.DataFrame:
     Q = np.linalg.qr(Xa)[0]
     U = Ef - (Ef @ Q) @ Q.T
     Lr = lag - (lag @ Q) @ Q.T
+    lm, reason, ul, ll, ssr = bg_lm_rows(U, Lr, Ef, _data_reasons(E, y), finite)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        f = np.where(reason == R.OK, (ul**2 / ll) / (ssr / df_denom), np.nan)
+    return _bg_frame(lm, stats.chi2.sf(lm, 1), f, stats.f.sf(f, 1, df_denom), df_denom, reason)
+
+
+def bg_lm_rows(U, Lr, Ef, data_reasons, finite):
+    """Breusch-Godfrey LM = n (1 - SSR / SST) per row from u = Me, l = Me_{-1} (M the annihilator of
+    the auxiliary design) and the scaled residuals Ef, with reasons: zero residual variance,
+    singular auxiliary design (l = 0), the series' own reasons, non-finite input.  Returns
+    (lm, reason, u'l, l'l, SSR); lm is NaN wherever the reason is set."""
+    n = Ef.shape[1]
     ll = np.sum(Lr**2, axis=1)
     ul = np.sum(U * Lr, axis=1)
     uu = np.sum(U**2, axis=1)
     sst = np.sum((Ef - Ef.mean(axis=1, keepdims=True)) ** 2, axis=1)
     scale = np.sum(Ef**2, axis=1)
+    reason = np.full(Ef.shape[0], R.OK, dtype=object)
     reason[~(sst > 1e-20 * np.maximum(scale, 1e-300)) | ~(scale > 0)] = R.ZERO_RESIDUAL_VARIANCE
     reason[(reason == R.OK) & ~(ll > 1e-20 * np.maximum(scale, 1e-300))] = R.SINGULAR_DESIGN
-    data = _data_reasons(E, y)
-    reason = np.where(data != R.OK, data, reason)
+    reason = np.where(data_reasons != R.OK, data_reasons, reason)
     reason[~finite] = R.NON_FINITE_INPUT
-    ok = reason == R.OK
     with np.errstate(divide="ignore", invalid="ignore"):
         ssr = uu - ul**2 / ll
         lm = n * (1.0 - ssr / sst)
-        f = (ul**2 / ll) / (ssr / df_denom)
-    reason[ok & ~(ssr > 0)] = R.ZERO_RESIDUAL_VARIANCE
-    ok = reason == R.OK
-    lm = np.where(ok, lm, np.nan)
-    f = np.where(ok, f, np.nan)
-    return _bg_frame(lm, stats.chi2.sf(lm, 1), f, stats.f.sf(f, 1, df_denom), df_denom, reason)
+    reason[(reason == R.OK) & ~(ssr > 0)] = R.ZERO_RESIDUAL_VARIANCE
+    return np.where(reason == R.OK, lm, np.nan), reason, ul, ll, ssr
 
 
 def _bg_frame(lm, p, f, fp, df_denom, reason) -> pd.DataFrame:

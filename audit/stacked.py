@@ -36,11 +36,10 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
-from audit.asymptotic_tests import ljung_box_batch
+from audit.asymptotic_tests import bg_lm_rows, ljung_box_batch, ljung_box_default_lags
 from audit.durbin_watson import dw_statistic_rows as _dw_rows, dw_zones as _zone
 from audit import reasons as R
 from audit.ar1 import _GRID, _brackets, _objective_from_pieces, gls_rss_pieces
-from audit.asymptotic_tests import ljung_box_default_lags
 from audit.durbin_watson import critical_bounds
 from audit.quadform import (
     GAUSS7_WEIGHTS_ON_KRONROD_NODES,
@@ -1261,23 +1260,7 @@ def _breusch_godfrey(E_ref, Y, des: _Designs, du, xreason, x_finite, n, k):
         Qn = des.Qa_noconst[du[rows[nc]]]
         U_[nc] = Ef[nc] - np.einsum("mnk,mk->mn", Qn, np.einsum("mnk,mn->mk", Qn, Ef[nc]))
         Lr[nc] = lag[nc] - np.einsum("mnk,mk->mn", Qn, np.einsum("mnk,mn->mk", Qn, lag[nc]))
-    ll = np.sum(Lr**2, axis=1)
-    ul = np.sum(U_ * Lr, axis=1)
-    uu = np.sum(U_**2, axis=1)
-    sst = np.sum((Ef - Ef.mean(axis=1, keepdims=True)) ** 2, axis=1)
-    scale = np.sum(Ef**2, axis=1)
-    sub = np.full(rows.size, R.OK, dtype=object)
-    sub[~(sst > 1e-20 * np.maximum(scale, 1e-300)) | ~(scale > 0)] = R.ZERO_RESIDUAL_VARIANCE
-    sub[(sub == R.OK) & ~(ll > 1e-20 * np.maximum(scale, 1e-300))] = R.SINGULAR_DESIGN
-    data = series_reasons(Y[rows], E0)
-    sub = np.where(data != R.OK, data, sub)
-    sub[~finite] = R.NON_FINITE_INPUT
-    ok = sub == R.OK
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ssr = uu - ul**2 / ll
-        val = n * (1.0 - ssr / sst)
-    ok &= ssr > 0
-    lm[rows] = np.where(ok, val, np.nan)
+    lm[rows] = bg_lm_rows(U_, Lr, Ef, series_reasons(Y[rows], E0), finite)[0]
     return lm, _chi2_sf(lm, 1)
 
 
