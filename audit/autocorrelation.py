@@ -34,6 +34,9 @@ __all__ = [
     "residual_lag1_batch",
     "phase_lag1",
     "phase_lag1_batch",
+    "phase_lag1_columns",
+    "phase_lag1_r1",
+    "phase_r1_plus",
 ]
 
 RESIDUAL_METHOD = ("residual lag-1 autocorrelation; exact null mean/variance (Pitman-Koopmans); "
@@ -198,7 +201,8 @@ def residual_lag1(residuals, X, y=None) -> ResidualLag1:
 # ----------------------------------------------------------------------------- phases
 
 
-def _phase_from_r1(n: int, r1: np.ndarray):
+def _phase_from_r1(n: int | np.ndarray, r1: np.ndarray):
+    """(r1+, its standard error, z, one-sided p, two-sided p) from r1 of phases of n points."""
     se = (n - 2.0) / (n * np.sqrt(n - 1.0))
     r1p = r1 + 1.0 / n
     z = r1p / se
@@ -232,9 +236,46 @@ def phase_lag1(y) -> PhaseLag1:
 
 def phase_lag1_batch(Y) -> pd.DataFrame:
     """``phase_lag1`` for each row of Y (phases of equal length n)."""
+    cols = phase_lag1_columns(Y)
+    cols["method"] = PHASE_METHOD
+    return pd.DataFrame(cols)
+
+
+def phase_lag1_columns(Y) -> dict[str, np.ndarray]:
+    """The columns of ``phase_lag1_batch`` as numpy arrays (no frame)."""
     Y = np.asarray(Y, dtype=float)
     if Y.ndim == 1:
         Y = Y[None, :]
+    m, n = Y.shape
+    r1, reason = phase_lag1_r1(Y)
+    ok = reason == R.OK
+    if n >= 3:
+        r1p, se, z, p1, p2 = _phase_from_r1(n, r1)
+    else:
+        r1p = z = p1 = p2 = np.full(m, np.nan)
+        se = np.nan
+    return {
+        "n": np.full(m, n),
+        "r1": r1,
+        "r1_plus": r1p,
+        "std_error": np.where(ok, se, np.nan),
+        "z": z,
+        "p_value_one_sided": p1,
+        "p_value_two_sided": p2,
+        "method": np.full(m, PHASE_METHOD, dtype=object),
+        "reason": reason,
+    }
+
+
+def phase_r1_plus(n: np.ndarray, r1: np.ndarray):
+    """(r1+, standard error, z, one-sided p, two-sided p) of ``phase_lag1_batch`` for phases of
+    sizes n (array) with raw r1 (NaN where undefined, then all NaN), all phase sizes at once."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return _phase_from_r1(np.asarray(n, dtype=float), r1)
+
+
+def phase_lag1_r1(Y) -> tuple[np.ndarray, np.ndarray]:
+    """(raw r1, reason code) of ``phase_lag1_batch`` for each row of Y (2-D, phases of equal length)."""
     m, n = Y.shape
     reason = np.full(m, R.OK, dtype=object)
     finite = np.all(np.isfinite(Y), axis=1)
@@ -248,20 +289,4 @@ def phase_lag1_batch(Y) -> pd.DataFrame:
         reason[:] = R.TOO_FEW_POINTS
     reason[~finite] = R.NON_FINITE_INPUT
     ok = reason == R.OK
-    r1 = np.where(ok, num / np.where(ok, den, 1.0), np.nan)
-    if n >= 3:
-        r1p, se, z, p1, p2 = _phase_from_r1(n, r1)
-    else:
-        r1p = z = p1 = p2 = np.full(m, np.nan)
-        se = np.nan
-    return pd.DataFrame({
-        "n": np.full(m, n),
-        "r1": r1,
-        "r1_plus": r1p,
-        "std_error": np.where(ok, se, np.nan),
-        "z": z,
-        "p_value_one_sided": p1,
-        "p_value_two_sided": p2,
-        "method": PHASE_METHOD,
-        "reason": reason,
-    })
+    return np.where(ok, num / np.where(ok, den, 1.0), np.nan), reason

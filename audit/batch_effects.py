@@ -4,8 +4,9 @@ Gives the same tables as the per-case reference functions, concatenated over cas
 audit.effect_sizes.case_effect_sizes (case-level dict and per-contrast rows) and
 audit.trend.baseline_trends (one row per baseline phase and one for all baseline points).
 
-How: pairwise counts (improving/worse/tied pairs, Kendall S of the baseline, tie groups of the
-pooled data) on NaN-padded stacked arrays (m, nA, nB); phase means and SDs, Theil-Sen slopes and
+How: improving/worse/tied pairs and the tie groups of the pooled data from one stable sort of
+each contrast's pooled values (contrasts of equal size stacked), Kendall S of the baseline on
+(m, nA(nA-1)/2) pair arrays; phase means and SDs, Theil-Sen slopes and
 their order-statistic interval (as scipy.stats.theilslopes), Mann-Kendall S and its tie-corrected
 variance per series length on (m, n) / (m, n(n-1)/2) arrays, using the same floating-point
 operations as the reference (so constant phases give the same values and reason codes); the exact
@@ -21,6 +22,7 @@ from dataclasses import asdict, fields
 
 import numpy as np
 import pandas as pd
+from pandas.api.types import infer_dtype
 from scipy import stats
 
 from audit import reasons as R
@@ -52,9 +54,11 @@ from audit.trend import (
     window_exponents,
 )
 
-__all__ = ["case_effects_batch", "baseline_trends_batch", "CASE_LEVEL_COLUMNS"]
+__all__ = ["case_effects_batch", "baseline_trends_batch", "baseline_trend_parts", "CASE_LEVEL_COLUMNS",
+           "ObservationColumns", "TextCodes", "dense_rank", "increasing_within"]
 
 _NAN = float("nan")
+_Z_SCREEN = stats.norm.ppf(1.0 - 0.05 / 2.0)  # the lag-1 screen of the Hamed-Rao correction
 _BRENT_RTOL = 4.0 * np.finfo(float).eps  # scipy.optimize.brentq default rtol
 _BRENT_MAXITER = 100
 _PAIR_BUDGET = 1 << 22  # booleans per block of pairwise comparisons (memory bound)
@@ -122,6 +126,17 @@ def _flip(p: np.ndarray, pa: np.ndarray, alpha: float) -> np.ndarray:
     return out
 
 
+def _boolean_array(values: np.ndarray) -> pd.api.extensions.ExtensionArray:
+    """pd.array(list(values), dtype="boolean") of an object array of True / False / missing."""
+    values = np.asarray(values, dtype=object)
+    if infer_dtype(values, skipna=True) not in ("boolean", "empty"):
+        return pd.array(values.tolist(), dtype="boolean")
+    missing = pd.isna(values)
+    data = np.zeros(len(values), dtype=bool)
+    data[~missing] = values[~missing].astype(bool)
+    return pd.arrays.BooleanArray(data, missing)
+
+
 def _codes(ok: np.ndarray, code: str, other: str = R.OK) -> np.ndarray:
     return np.where(ok, other, code).astype(object)
 
@@ -156,26 +171,44 @@ def _cached(fn, keys: np.ndarray) -> np.ndarray:
     """fn applied to each distinct row of keys (integer array (m, k)), broadcast back."""
     if len(keys) == 0:
         return np.zeros(0)
-    uniq, inv = np.unique(keys, axis=0, return_inverse=True)
+    uniq, inv = _unique_rows(keys)
     vals = np.array([fn(*map(int, row)) for row in uniq], dtype=float)
-    return vals[inv.ravel()]
+    return vals[inv]
+
+
+def _unique_rows(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """np.unique(keys, axis=0, return_inverse=True) of an integer array (m, k), the inverse flat;
+    rows are coded as one integer (mixed radix, lexicographic) when their ranges allow."""
+    keys = np.asarray(keys)
+    if keys.ndim == 2 and len(keys) and keys.dtype.kind in "iu":
+        lo = keys.min(axis=0).astype(np.int64)
+        span = keys.max(axis=0).astype(np.int64) - lo + 1
+        if float(np.prod(span.astype(float))) < 2.0**62:
+            code = np.zeros(len(keys), dtype=np.int64)
+            for c in range(keys.shape[1]):
+                code = code * span[c] + (keys[:, c].astype(np.int64) - lo[c])
+            _, first, inv = np.unique(code, return_index=True, return_inverse=True)
+            return keys[first], inv.ravel()
+    uniq, inv = np.unique(keys, axis=0, return_inverse=True)
+    return uniq, inv.ravel()
 
 
 def _join_rows(parts: list[np.ndarray]) -> np.ndarray:
-    """R.join of several object arrays of reason codes, element by element."""
+    """R.join of several object arrays of reason codes, element by element (once per distinct
+    combination)."""
     n = len(parts[0])
     if n == 0:
         return np.zeros(0, dtype=object)
-    stacked = np.stack([np.asarray(p, dtype=object) for p in parts], axis=1)
-    out = np.empty(n, dtype=object)
-    key_rows = ["\x00".join(r) for r in stacked.tolist()]
-    cache: dict[str, str] = {}
-    for i, k in enumerate(key_rows):
-        v = cache.get(k)
-        if v is None:
-            v = cache[k] = R.join(*k.split("\x00"))
-        out[i] = v
-    return out
+    cols = [np.asarray(p, dtype=object) for p in parts]
+    code = np.zeros(n, dtype=np.int64)
+    for col in cols:
+        c, u = pd.factorize(col)
+        if len(c) and c.min() < 0:  # a missing code: row by row
+            return np.array([R.join(*r) for r in zip(*cols)], dtype=object)
+        code = code * len(u) + c
+    _, first, inv = np.unique(code, return_index=True, return_inverse=True)
+    joined = [R.join(*(col[i] for col in cols)) for i in first.tolist()]
+    return np.array(joined, dtype=object)[inv.ravel()]
 
 
 def _smd_columns(md_s, sd_s, e_diff, enough, j):
@@ -198,16 +231,6 @@ def _with_code(codes: np.ndarray, mask: np.ndarray, code: str = R.NUMERICAL_FAIL
     for i in np.flatnonzero(mask):
         out[i] = R.join(out[i], code)
     return out
-
-
-def _gather(values: np.ndarray, rows: np.ndarray, start: np.ndarray, length: np.ndarray,
-            width: int) -> np.ndarray:
-    """(m, width) matrix of values[rows[start + k]] for k < length, NaN beyond."""
-    k = np.arange(width)
-    inside = k[None, :] < length[:, None]
-    idx = np.where(inside, start[:, None] + k[None, :], 0)
-    out = values[rows[idx]] if len(rows) else np.full(idx.shape, _NAN)
-    return np.where(inside, out, _NAN)
 
 
 def _segment_moments(values, rows, start, length):
@@ -360,17 +383,162 @@ def _case_bounds(obs: pd.DataFrame):
     return keys[start], start, length, np.repeat(np.arange(start.size), length)
 
 
-def _normalised_strings(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """(codes, normalised distinct strings): str(v).strip().lower() of each value."""
-    text = np.asarray(values).astype(str)
-    uniq, inv = np.unique(text, return_inverse=True)
-    norm = np.array([u.strip().lower() for u in uniq], dtype=object)
+def _normalise_text(text: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(codes, normalised distinct strings): str(v).strip().lower() of each value v of text[codes]
+    (text: a numpy str array of distinct values), the distinct strings sorted."""
+    norm = np.array([u.strip().lower() for u in text], dtype=object)
     nuniq, ninv = np.unique(norm.astype(str), return_inverse=True)
-    return ninv[inv.ravel()], nuniq.astype(object)
+    return ninv.ravel()[codes], nuniq.astype(object)
+
+
+class TextCodes:
+    """A text column as codes into its distinct values: ``text[codes]`` equals
+    ``column.to_numpy().astype(str)`` element by element (same numpy str dtype), read once.
+
+    Built from pandas.factorize (no conversion of every row to Python strings); a column with
+    missing values is read the plain way (str() of a missing value depends on its kind).
+    """
+
+    def __init__(self, column: pd.Series):
+        codes, uniques = pd.factorize(column)
+        if len(codes) and codes.min() < 0:
+            text, codes = np.unique(column.to_numpy().astype(str), return_inverse=True)
+        else:
+            values = np.asarray(uniques, dtype=object)
+            text = np.array([str(v) for v in values]) if len(values) else np.zeros(0, dtype=str)
+        self.codes = np.asarray(codes, dtype=np.int64).ravel()
+        self.text = text
+
+    def strings(self) -> np.ndarray:
+        """column.to_numpy().astype(str)"""
+        return self.text[self.codes]
+
+    def normalised(self) -> tuple[np.ndarray, np.ndarray]:
+        """(codes, sorted distinct strings) of str(v).strip().lower() of each value."""
+        return _normalise_text(self.text, self.codes)
+
+
+class ObservationColumns:
+    """The columns of sorted clean observations that the batch paths read, converted once.
+
+    Cases are runs of equal case_key (as _case_bounds); per-case columns are read at each case's
+    first row. ``case_effects_batch``, ``baseline_trends_batch`` and ``audit.diagnose.phase_table``
+    accept this in place of the observations frame, so diagnose_cases converts each column once.
+    """
+
+    def __init__(self, obs: pd.DataFrame, condition: TextCodes | None = None, key_codes: np.ndarray | None = None):
+        key_col = obs["case_key"]
+        sortable = True
+        if key_codes is not None:
+            codes = key_codes
+        else:
+            try:
+                codes = pd.factorize(key_col, sort=True)[0]
+            except TypeError:  # keys that cannot be ordered
+                codes, sortable = pd.factorize(key_col)[0], False
+        n = len(codes)
+        if n and codes.min() < 0:  # missing keys: each one a case of its own, as _case_bounds
+            self.keys, self.case_start, _, self.case_id = _case_bounds(obs)
+            self.key_rank = None
+        else:
+            codes = np.asarray(codes, dtype=np.int64)
+            start = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]]) if n else np.zeros(0, dtype=np.int64)
+            length = np.diff(np.r_[start, n]).astype(np.int64)
+            self.case_start = start
+            self.case_id = np.repeat(np.arange(start.size), length)
+            self.keys = key_col.iloc[start].to_numpy() if n else key_col.to_numpy()[:0]
+            self.key_rank = codes if sortable else None  # rank of each row's key among the sorted keys
+        self.session = obs["session"].to_numpy(dtype=float)
+        self.outcome = obs["outcome"].to_numpy(dtype=float)
+        self.phase_index = obs["phase_index"].to_numpy()
+        self.condition = condition if condition is not None else TextCodes(obs["condition"])
+        self.frame = obs
+        self._case_values: dict[tuple[str, object], np.ndarray] = {}
+
+    def at_case_start(self, column: str, dtype=None) -> np.ndarray:
+        """obs[column].to_numpy(dtype=dtype)[case_start]"""
+        key = (column, dtype)
+        if key not in self._case_values:
+            self._case_values[key] = self.frame[column].iloc[self.case_start].to_numpy(dtype=dtype)
+        return self._case_values[key]
+
+
+def _columns(obs) -> ObservationColumns:
+    return obs if isinstance(obs, ObservationColumns) else ObservationColumns(obs)
+
+
+def _object_array(items: list) -> np.ndarray:
+    out = np.empty(len(items), dtype=object)
+    out[:] = items
+    return out
+
+
+def _per_distinct(fn, values: np.ndarray) -> np.ndarray:
+    """Object array of fn(v) for each v of an object array, computed once per distinct text
+    (value by value for missing values and for arrays holding anything but text)."""
+    values = np.asarray(values, dtype=object)
+    if infer_dtype(values, skipna=True) not in ("string", "empty"):
+        return _object_array([fn(v) for v in values])
+    codes, uniques = pd.factorize(values)
+    out = _object_array([fn(u) for u in uniques] + [None])[codes]
+    lost = np.flatnonzero(codes < 0)  # missing values (pandas.factorize gives them no code)
+    if lost.size:
+        out[lost] = _object_array([fn(v) for v in values[lost]])
+    return out
+
+
+def _normalize_directions(values: np.ndarray) -> np.ndarray:
+    """normalize_direction of each value (object array)."""
+    return _per_distinct(normalize_direction, values)
+
+
+def dense_rank(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """np.unique(v, return_inverse=True), the inverse flat (integers: by counting when their range is small)."""
+    if v.dtype.kind not in "iu":
+        uniq, inv = np.unique(v, return_inverse=True)
+        return uniq, inv.ravel()
+    if len(v) == 0:
+        return v[:0], np.zeros(0, dtype=np.int64)
+    lo, hi = int(v.min()), int(v.max())
+    if hi - lo > 4 * len(v) + 1024:
+        uniq, inv = np.unique(v, return_inverse=True)
+        return uniq, inv.ravel()
+    present = np.zeros(hi - lo + 1, dtype=bool)
+    present[v - lo] = True
+    uniq = (np.flatnonzero(present) + lo).astype(v.dtype)
+    rank = np.cumsum(present) - 1
+    return uniq, rank[v - lo]
+
+
+def increasing_within(g: np.ndarray, x: np.ndarray) -> bool:
+    """g non-decreasing and x strictly increasing within each run of equal g."""
+    if len(g) < 2:
+        return True
+    dg = g[1:] - g[:-1]
+    if (dg < 0).any():
+        return False
+    same = dg == 0
+    return bool((x[1:][same] > x[:-1][same]).all())
+
+
+def _sorted_pairs(a: np.ndarray, b: np.ndarray) -> bool:
+    """(a, b) non-decreasing in lexicographic order (integers): a stable sort would keep the order."""
+    if len(a) < 2:
+        return True
+    da = a[1:] - a[:-1]
+    if (da < 0).any():
+        return False
+    same = da == 0
+    return bool((b[1:][same] >= b[:-1][same]).all())
 
 
 def _is_alternating(design: np.ndarray) -> np.ndarray:
-    return np.array([d.strip().lower().replace("-", "_").startswith("alternating") for d in design], dtype=bool)
+    """Per design text (numpy str array): an alternating-treatments design?"""
+    if len(design) == 0:
+        return np.zeros(0, dtype=bool)
+    uniq, inv = np.unique(design, return_inverse=True)
+    alt = np.array([d.strip().lower().replace("-", "_").startswith("alternating") for d in uniq], dtype=bool)
+    return alt[inv.ravel()]
 
 
 # ----------------------------------------------------------------------------------------------
@@ -378,38 +546,40 @@ def _is_alternating(design: np.ndarray) -> np.ndarray:
 # ----------------------------------------------------------------------------------------------
 
 
-def case_effects_batch(obs: pd.DataFrame, rho: np.ndarray, alpha: float = 0.05,
+def case_effects_batch(obs: pd.DataFrame | ObservationColumns, rho: np.ndarray, alpha: float = 0.05,
                        confidence: float = 0.95) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Case-level and per-contrast effect sizes of all cases (= case_effect_sizes per case).
 
     obs: clean observations sorted by case_key then session (case_key, session, outcome,
     phase_index, condition, design, desired_direction, outcome_scale); design and condition are
-    read as text, direction and scale from each case's first row, as diagnose_cases passes them.
+    read as text, direction and scale from each case's first row, as diagnose_cases passes them
+    (or those columns read once: ObservationColumns).
     rho: one AR(1) estimate per case in order of appearance; non-finite means "not given" (the
     reference's rho=None: lag-1 autocorrelation of residuals from phase/condition means).
     Returns (case_level: one row per case with the keys of the case dict, per_contrast: the
     per-contrast rows of all cases with a leading case_key column).
     """
-    keys, cstart, _, case_id = _case_bounds(obs)
+    oc = _columns(obs)
+    keys, case_id = oc.keys, oc.case_id
     ncase = len(keys)
     rho = np.asarray(rho, dtype=float).ravel()
     if rho.size != ncase:
         raise ValueError(f"rho has {rho.size} values for {ncase} cases; give one per case (NaN when unknown)")
-    session = obs["session"].to_numpy(dtype=float)
-    y_raw = obs["outcome"].to_numpy(dtype=float)
-    phase_raw = obs["phase_index"].to_numpy()
-    cond_code, cond_names = _normalised_strings(obs["condition"].to_numpy())
-    design = obs["design"].to_numpy()[cstart].astype(str) if ncase else np.zeros(0, dtype=str)
-    direction_raw = obs["desired_direction"].to_numpy(dtype=object)[cstart] if ncase else np.zeros(0, dtype=object)
-    scale_raw = obs["outcome_scale"].to_numpy(dtype=object)[cstart] if ncase else np.zeros(0, dtype=object)
-    direction = np.array([normalize_direction(d) for d in direction_raw], dtype=object)
+    session = oc.session
+    y_raw = oc.outcome
+    phase_raw = oc.phase_index
+    cond_code, cond_names = oc.condition.normalised()
+    design = oc.at_case_start("design").astype(str) if ncase else np.zeros(0, dtype=str)
+    direction_raw = oc.at_case_start("desired_direction", object) if ncase else np.zeros(0, dtype=object)
+    scale_raw = oc.at_case_start("outcome_scale", object) if ncase else np.zeros(0, dtype=object)
+    direction = _normalize_directions(direction_raw)
     assumed = np.array([d is None for d in direction], dtype=bool)
     direction = np.where(assumed, "increase", direction).astype(object)
     decrease = direction == "decrease"
     alt = _is_alternating(design)
 
     # session order within each case (stable, as the reference's argsort)
-    perm = np.lexsort((session, case_id))
+    perm = np.arange(len(session)) if increasing_within(case_id, session) else np.lexsort((session, case_id))
     y = y_raw[perm]
     cs = case_id[perm]
     ph = phase_raw[perm]
@@ -421,11 +591,13 @@ def case_effects_batch(obs: pd.DataFrame, rho: np.ndarray, alpha: float = 0.05,
     nrow = len(y)
 
     # groups: phase (ranked) in ordinary designs, condition text in alternating designs
-    ph_uniq, ph_rank = np.unique(ph, return_inverse=True)
-    ph_rank = ph_rank.ravel()
+    ph_uniq, ph_rank = dense_rank(ph)
     alt_row = alt[cs] if nrow else np.zeros(0, dtype=bool)
     gcode = np.where(alt_row, cc, ph_rank)
-    seg_order = np.lexsort((np.arange(nrow), gcode, cs))
+    if _sorted_pairs(cs, gcode):
+        seg_order = np.arange(nrow)
+    else:  # stable sort by (case, group): one integer key
+        seg_order = np.argsort(cs.astype(np.int64) * (int(gcode.max()) + 1) + gcode, kind="stable")
     sc_, sg_ = cs[seg_order], gcode[seg_order]
     new_seg = np.r_[True, (sc_[1:] != sc_[:-1]) | (sg_[1:] != sg_[:-1])] if nrow else np.zeros(0, dtype=bool)
     seg_start = np.flatnonzero(new_seg)
@@ -552,33 +724,66 @@ def _pairwise_counts(values, rows, seg_start, seg_len, bseg, tseg, sign):
     if m == 0:
         return pos, neg, ties, s_trend, tie_sum
     na, nb = seg_len[bseg], seg_len[tseg]
+    # pooled counts, contrasts of equal pooled size together (bounded memory)
     size = na + nb
-    order = np.argsort(size, kind="stable")
-    i = 0
-    while i < m:
-        # block of contrasts with similar sizes, bounded memory
-        j = i + 1
-        while j < m and (j - i + 1) * int(size[order[j]]) ** 2 <= _PAIR_BUDGET:
-            j += 1
-        sel = order[i:j]
-        la, lb = int(na[sel].max()), int(nb[sel].max())
-        A = _gather(values, rows, seg_start[bseg[sel]], na[sel], la) * sign[sel][:, None]
-        B = _gather(values, rows, seg_start[tseg[sel]], nb[sel], lb) * sign[sel][:, None]
-        d_gt = B[:, None, :] > A[:, :, None]
-        d_lt = B[:, None, :] < A[:, :, None]
-        d_eq = B[:, None, :] == A[:, :, None]
-        pos[sel] = d_gt.sum(axis=(1, 2))
-        neg[sel] = d_lt.sum(axis=(1, 2))
-        ties[sel] = d_eq.sum(axis=(1, 2))
-        upper = np.triu(np.ones((la, la), dtype=bool), 1)
-        later_gt = (A[:, None, :] > A[:, :, None]) & upper  # [i, j]: a_j > a_i, j > i
-        later_lt = (A[:, None, :] < A[:, :, None]) & upper
-        s_trend[sel] = later_gt.sum(axis=(1, 2)).astype(float) - later_lt.sum(axis=(1, 2))
-        P = np.concatenate([A, B], axis=1)
-        cnt = (P[:, :, None] == P[:, None, :]).sum(axis=2).astype(float)
-        tie_sum[sel] = np.where(np.isfinite(P), cnt * cnt - 1.0, 0.0).sum(axis=1)  # sum_groups t^3 - t
-        i = j
+    for n in np.unique(size):
+        if n == 0:
+            continue
+        group = np.flatnonzero(size == n)
+        step = max(1, _PAIR_BUDGET // int(n) // 8)
+        for lo in range(0, group.size, step):
+            sel = group[lo:lo + step]
+            na_s = na[sel]
+            # pooled rows: the baseline values, then the treatment values
+            k = np.arange(n)[None, :]
+            in_a = k < na_s[:, None]
+            src = np.where(in_a, seg_start[bseg[sel]][:, None] + k, seg_start[tseg[sel]][:, None] + k - na_s[:, None])
+            P = values[rows[src]] * sign[sel][:, None]
+            pos[sel], neg[sel], ties[sel], tie_sum[sel] = _pooled_rank_counts(P, in_a)
+    # Kendall S of the baseline, contrasts of equal baseline length together
+    for n in np.unique(na):
+        if n < 2:
+            continue
+        group = np.flatnonzero(na == n)
+        step = max(1, _PAIR_BUDGET // int(n * n))
+        I, J = np.triu_indices(n, 1)  # pairs i < j: later minus earlier
+        for lo in range(0, group.size, step):
+            sel = group[lo:lo + step]
+            A = values[rows[seg_start[bseg[sel]][:, None] + np.arange(n)]] * sign[sel][:, None]
+            AI, AJ = A[:, I], A[:, J]
+            s_trend[sel] = (AJ > AI).sum(axis=1).astype(float) - (AJ < AI).sum(axis=1)
     return pos, neg, ties, s_trend, tie_sum
+
+
+def _pooled_rank_counts(P: np.ndarray, is_a: np.ndarray):
+    """Per row of P (the baseline values A of a contrast, then its treatment values B; is_a marks
+    the baseline ones): #{(i, j): B_j > A_i}, #{B_j < A_i}, #{B_j == A_i} (NaN compares false) and
+    sum(t^3 - t) over the tie groups of the finite values of both together, from one stable sort
+    of each row (integer counts, exact)."""
+    m, L = P.shape
+    idx = np.argsort(P, axis=1, kind="stable")  # NaN last; within ties baseline values first
+    flat = (idx + (np.arange(m) * L)[:, None]).ravel()
+    Ps = P.ravel()[flat]
+    valid = ~np.isnan(Ps)
+    a = is_a.ravel()[flat] & valid
+    b = ~is_a.ravel()[flat] & valid
+    pos_all = np.arange(m * L)
+    new = np.ones(m * L, dtype=bool)
+    new[1:] = Ps[1:] != Ps[:-1]  # a tie group starts (each NaN is a group of its own)
+    new[::L] = True
+    g_first = np.maximum.accumulate(np.where(new, pos_all, 0))
+    cum = np.cumsum(a) - a  # baseline values before each position (all rows)
+    row_base = np.repeat(cum[::L], L)
+    below = cum[g_first] - row_base  # baseline values below the tie group
+    equal = cum - cum[g_first]  # baseline values tied with a treatment value (they sort first)
+    a_total = np.repeat(a.reshape(m, L).sum(axis=1), L)
+    pos = np.where(b, below, 0).reshape(m, L).sum(axis=1)
+    ties = np.where(b, equal, 0).reshape(m, L).sum(axis=1)
+    neg = np.where(b, a_total - (cum - row_base), 0).reshape(m, L).sum(axis=1)
+    starts = np.flatnonzero(new)
+    t = np.diff(np.r_[starts, m * L]).astype(float)
+    tie_sum = np.bincount(starts // L, weights=np.where(np.isfinite(Ps[starts]), t * t * t - t, 0.0), minlength=m)
+    return pos, neg, ties, tie_sum
 
 
 def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd, seg_max, seg_min, seg_finite,
@@ -644,8 +849,7 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd,
         key = np.stack([2 * pos + ties, na_i, nb_i], axis=1) if m else np.zeros((0, 3), dtype=np.int64)
         nlo, nhi = np.full(m, _NAN), np.full(m, _NAN)
         if m:
-            uniq, inv = np.unique(key, axis=0, return_inverse=True)
-            inv = inv.ravel()
+            uniq, inv = _unique_rows(key)
             first = np.zeros(len(uniq), dtype=np.int64)  # one contrast per distinct (NAP, nA, nB)
             first[inv[::-1]] = np.arange(m)[::-1]
             u_val = nap[first]
@@ -694,7 +898,7 @@ def _contrast_columns(values, rows, seg_start, seg_len, seg_e, seg_mean, seg_sd,
                           reason=ok_code, reason_adjusted=rho_code)
 
         # ---- log response ratio
-        scale_case = np.array([None if v is None else str(v).strip().lower() for v in scale_raw], dtype=object)
+        scale_case = _per_distinct(lambda v: None if v is None else str(v).strip().lower(), scale_raw)
         scale = scale_case[con_case] if m else np.zeros(0, dtype=object)
         ratio = np.isin(scale.astype(str), list(RATIO_SCALES)) & np.array([v is not None for v in scale], bool)
         moments_overflow = bad_ma | bad_mb | bad_sa | bad_sb
@@ -862,9 +1066,9 @@ def _per_contrast_frame(keys, con_case, labels, bph, tph, cols) -> pd.DataFrame:
             "contrast": labels, "baseline_phase": bph, "treatment_phase": tph}
     for k, v in cols.items():
         if k.endswith("flip"):
-            data[k] = pd.array(v.tolist(), dtype="boolean")
+            data[k] = _boolean_array(v)
         elif v.dtype == object:  # text (None -> missing)
-            data[k] = pd.array(v.tolist(), dtype="str")
+            data[k] = pd.array(v, dtype="str")
         else:
             data[k] = v
     frame = pd.DataFrame(data)
@@ -900,6 +1104,11 @@ def _case_level_frame(cols, ci, ncase, design, direction, assumed, scale_raw, rh
         mean_s = csum(np.ldexp(v, -e[ci]) if len(ci) else v, mask) / cnt
         return unscale_checked(mean_s, e)
 
+    ci_sorted = bool((np.diff(ci) >= 0).all()) if len(ci) else True
+    if ci_sorted and len(ci):  # each case's contrasts are ci[c_lo[c]:c_hi[c]]
+        c_lo = np.searchsorted(ci, np.arange(ncase), side="left")
+        c_hi = np.searchsorted(ci, np.arange(ncase), side="right")
+
     def cjoin(codes: np.ndarray) -> np.ndarray:
         """R.join of a reason column over each case's contrasts."""
         out = np.full(ncase, R.OK, dtype=object)
@@ -911,7 +1120,8 @@ def _case_level_frame(cols, ci, ncase, design, direction, assumed, scale_raw, rh
         mixed = np.bincount(ci, weights=(codes != codes[first[ci]]).astype(float), minlength=ncase) > 0
         out[has] = codes[first[has]]
         for c in np.flatnonzero(mixed):
-            out[c] = R.join(*codes[ci == c].tolist())
+            part = codes[c_lo[c]:c_hi[c]] if ci_sorted else codes[ci == c]
+            out[c] = R.join(*part.tolist())
         return out
 
     out: dict[str, np.ndarray] = {}
@@ -1038,10 +1248,9 @@ def _case_level_frame(cols, ci, ncase, design, direction, assumed, scale_raw, rh
         "rho_reason": rho_reason, "alpha": np.full(ncase, alpha), "aggregation": np.full(ncase, AGGREGATION, dtype=object),
         **out, "reason": np.where(has, R.OK, R.NO_CONTRAST).astype(object),
     }
-    frame = pd.DataFrame({c: data[c] for c in CASE_LEVEL_COLUMNS})
     for col in [c for c in CASE_LEVEL_COLUMNS if c.endswith("flip")]:
-        frame[col] = pd.array(frame[col].tolist(), dtype="boolean")
-    return frame
+        data[col] = _boolean_array(data[col])
+    return pd.DataFrame({c: data[c] for c in CASE_LEVEL_COLUMNS})
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1049,27 +1258,62 @@ def _case_level_frame(cols, ci, ncase, design, direction, assumed, scale_raw, rh
 # ----------------------------------------------------------------------------------------------
 
 _TREND_FIELDS = [fl.name for fl in fields(BaselineTrend)]
-def baseline_trends_batch(obs: pd.DataFrame, alpha: float = 0.05, confidence: float = 0.95) -> pd.DataFrame:
+def baseline_trends_batch(obs: pd.DataFrame | ObservationColumns, alpha: float = 0.05,
+                          confidence: float = 0.95) -> pd.DataFrame:
     """Baseline trend rows of all cases (= audit.trend.baseline_trends per case, concatenated).
 
     obs sorted by case_key then session; per case, one row per baseline phase (scope 'phase',
     phases in increasing order) then one for all baseline points (scope 'all_baseline'), with a
     leading case_key column. Series are used in the row order of obs, as the reference does.
     """
-    keys, cstart, _, case_id = _case_bounds(obs)
+    data, _ = _baseline_trend_data(_columns(obs), alpha, confidence)
+    frame = pd.DataFrame(data)
+    frame["phase_index"] = frame["phase_index"].astype("Int64")
+    return frame
+
+
+def baseline_trend_parts(obs: pd.DataFrame | ObservationColumns, columns: list[str], alpha: float = 0.05,
+                         confidence: float = 0.95):
+    """The rows of ``baseline_trends_batch`` split by scope without building the whole table:
+    (all_baseline rows in case order, phase rows with phase_index (int64) and case: the case's
+    position), each with ``columns`` of the same dtypes as in the whole table. None when a text
+    column would not be read as text there (the caller then uses the whole table).
+    """
+    data, out = _baseline_trend_data(_columns(obs), alpha, confidence, fields=columns)
+    out_all, out_case, out_phase = out
+    is_phase = ~out_all
+    every, phase = {}, {"phase_index": out_phase[is_phase].astype(np.int64)}
+    for name in columns:
+        v = data[name]
+        if not isinstance(v, np.ndarray):
+            return None
+        if v.dtype == object:
+            if infer_dtype(v, skipna=True) != "string":
+                return None
+            every[name], phase[name] = pd.array(v[out_all], dtype="str"), pd.array(v[is_phase], dtype="str")
+        else:
+            every[name], phase[name] = v[out_all], v[is_phase]
+    frame = pd.DataFrame(phase)
+    frame["case"] = out_case[is_phase]
+    return pd.DataFrame(every), frame
+
+
+def _baseline_trend_data(oc: ObservationColumns, alpha: float, confidence: float, fields: list[str] | None = None):
+    """(columns of the baseline_trends_batch table, (all-baseline row, case position, phase) per row);
+    of the BaselineTrend fields only ``fields`` when given."""
+    keys, case_id = oc.keys, oc.case_id
     ncase = len(keys)
-    x_all = obs["session"].to_numpy(dtype=float)
-    y_all = obs["outcome"].to_numpy(dtype=float)
-    phase = obs["phase_index"].to_numpy()
-    cond_code, cond_names = _normalised_strings(obs["condition"].to_numpy())
+    x_all = oc.session
+    y_all = oc.outcome
+    phase = oc.phase_index
+    cond_code, cond_names = oc.condition.normalised()
     is_base = np.isin(cond_code, np.flatnonzero(cond_names == "baseline"))
-    direction_raw = obs["desired_direction"].to_numpy(dtype=object)[cstart] if ncase else np.zeros(0, dtype=object)
-    direction = np.array([normalize_direction(d) for d in direction_raw], dtype=object)
+    direction_raw = oc.at_case_start("desired_direction", object) if ncase else np.zeros(0, dtype=object)
+    direction = _normalize_directions(direction_raw)
 
     base_rows = np.flatnonzero(is_base)
     bc = case_id[base_rows]
-    ph_uniq, prank = np.unique(phase[base_rows], return_inverse=True)
-    prank = prank.ravel()
+    ph_uniq, prank = dense_rank(phase[base_rows])
     order = np.lexsort((base_rows, prank, bc))
     seg_rows = base_rows[order]
     sbc, spr = bc[order], prank[order]
@@ -1114,19 +1358,17 @@ def baseline_trends_batch(obs: pd.DataFrame, alpha: float = 0.05, confidence: fl
     ph_col[out_all] = pd.NA
     data["phase_index"] = ph_col
     data["n_phases"] = np.where(out_all, n_phases[out_case] if len(out_case) else 0, 1).astype(np.int64)
-    for name in _TREND_FIELDS:
+    for name in _TREND_FIELDS if fields is None else [f for f in _TREND_FIELDS if f in fields]:
         data[name] = res[name][out_src]
-    if any(d is None for d in data["desired_direction"]):  # as a frame of rows holding None
+    if "desired_direction" in data and None in data["desired_direction"].tolist():  # as a frame of rows holding None
         data["desired_direction"] = pd.Series(data["desired_direction"], dtype=object)
     no_phase = out_all & (n_phases[out_case] == 0) if len(out_case) else np.zeros(0, dtype=bool)
-    if no_phase.any():
+    if no_phase.any() and "reason" in data:
         reason = np.asarray(data["reason"], dtype=object).copy()
         for i in np.flatnonzero(no_phase):
             reason[i] = R.join(R.EMPTY_PHASE, reason[i])
         data["reason"] = reason
-    frame = pd.DataFrame(data)
-    frame["phase_index"] = frame["phase_index"].astype("Int64")
-    return frame
+    return data, (out_all, out_case, out_phase)
 
 
 def _trend_series(x_all, y_all, rows, start, length, case, direction, direction_raw, alpha, confidence):
@@ -1145,7 +1387,12 @@ def _trend_series(x_all, y_all, rows, start, length, case, direction, direction_
     res["alpha"][:] = alpha
     res["theil_sen_confidence"][:] = confidence
     res["desired_direction"] = direction[case] if ns else np.zeros(0, dtype=object)
+    # set by _trend_block, turned into p-values for all its series at once below
+    res["_ols_t"], res["_hamed_rao_z"] = np.full(ns, _NAN), np.full(ns, _NAN)
+    a = 1.0 - confidence if confidence > 0.5 else confidence
+    zq = stats.norm.ppf(a / 2.0)
     fallback = []
+    blocks = []  # series computed by _trend_block
     for n in np.unique(length):
         sel = np.flatnonzero(length == n)
         idx = rows[start[sel][:, None] + np.arange(n)]
@@ -1167,7 +1414,24 @@ def _trend_series(x_all, y_all, rows, start, length, case, direction, direction_
         step = max(1, _SERIES_BUDGET // (n * n))  # bounded memory: (m, n, n) and (m, n(n-1)/2) arrays
         for lo in range(0, sel.size, step):
             part = slice(lo, lo + step)
-            _trend_block(int(n), X[part], Y[part], sel[part], res, direction[case[sel[part]]], alpha, confidence)
+            _trend_block(int(n), X[part], Y[part], sel[part], res, zq)
+            blocks.append(sel[part])
+    if blocks:
+        done = np.concatenate(blocks)
+        with np.errstate(all="ignore"):
+            t = res["_ols_t"][done]
+            p = np.full(done.size, _NAN)
+            k = ~np.isnan(t)
+            p[k] = 2 * stats.t.sf(np.abs(t[k]), (res["n"][done][k] - 2).astype(float))
+            res["ols_slope_p_value"][done] = p
+            res["mann_kendall_p_value"][done] = 2.0 * stats.norm.sf(np.abs(res["mann_kendall_z"][done]))
+            res["mann_kendall_hamed_rao_lag1_p_value"][done] = 2.0 * stats.norm.sf(np.abs(res["_hamed_rao_z"][done]))
+        d, ts = direction[case[done]], res["theil_sen_slope"][done]
+        res["moves_in_therapeutic_direction"][done] = _therapeutic(d, ts, res["mann_kendall_p_value"][done], alpha)
+        res["moves_in_therapeutic_direction_hamed_rao_lag1"][done] = _therapeutic(
+            d, ts, res["mann_kendall_hamed_rao_lag1_p_value"][done], alpha)
+        res["reason"][done] = _join_rows([res[name][done] for name in (
+            "ols_reason", "theil_sen_reason", "mann_kendall_reason", "hamed_rao_reason")])
     for i in fallback:
         r = rows[start[i]:start[i] + length[i]]
         bt = asdict(baseline_trend(x_all[r], y_all[r], direction_raw[case[i]], alpha=alpha, confidence=confidence))
@@ -1176,10 +1440,13 @@ def _trend_series(x_all, y_all, rows, start, length, case, direction, direction_
     return res
 
 
-def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
+def _trend_block(n, X, Y, sel, res, zq):
     """OLS, Theil-Sen, Mann-Kendall and lag-1 Hamed-Rao for m series of length n >= 2 with
     strictly increasing sessions and finite values (audit.trend.baseline_trend, element-wise).
-    Sums of squares and slopes on X / 2**ex and Y / 2**ey row by row (exact), scaled back."""
+    Sums of squares and slopes on X / 2**ex and Y / 2**ey row by row (exact), scaled back.
+    zq: the normal quantile of the Theil-Sen interval. The caller sets the p-values (from the t
+    statistic res["_ols_t"] and the z statistics, NaN where the p-value is), the
+    therapeutic-direction flags and the joined reason."""
     m = len(sel)
     I, J = np.tril_indices(n, -1)  # pairs i > j: later minus earlier
     ex, ey = binary_exponents(X), binary_exponents(Y)
@@ -1201,7 +1468,7 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
         ssr = (resid * resid).sum(axis=1)
         sst = (yc * yc).sum(axis=1)
         if n == 2:  # a line through two points: no residual degrees of freedom
-            se, p = np.full(m, _NAN), np.full(m, _NAN)
+            se, t = np.full(m, _NAN), np.full(m, _NAN)
             ols_reason = _with_code(np.full(m, R.NO_RESIDUAL_DF, dtype=object), overflow)
         else:
             degenerate = (ssr <= 1e-20 * sst) | (sst == 0.0)
@@ -1209,16 +1476,15 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
             se, bad_se = unscale_checked(se_scaled, ey - ex)
             se = np.where(degenerate, 0.0, se)
             t = np.where(degenerate, _NAN, b / se_scaled)
-            p = _t_two_sided(t, np.full(m, df), ~degenerate)
             ols_reason = np.where(degenerate, np.where(sst == 0.0, R.join(R.ZERO_RESIDUAL_VARIANCE, R.CONSTANT_SERIES),
                                                        R.ZERO_RESIDUAL_VARIANCE), R.OK).astype(object)
             overflow = overflow | (bad_se & ~degenerate)
             ols_reason = _with_code(ols_reason, overflow)
         ols_reason = np.where(singular, R.SINGULAR_DESIGN, ols_reason).astype(object)
-        for arr in (slope, intercept, se, p):
+        for arr in (slope, intercept, se, t):
             arr[singular] = _NAN
         res["ols_slope"][sel], res["ols_intercept"][sel] = slope, intercept
-        res["ols_slope_se"][sel], res["ols_slope_p_value"][sel] = se, p
+        res["ols_slope_se"][sel], res["_ols_t"][sel] = se, t
         res["ols_reason"][sel] = ols_reason
 
         # ---- ties in y: c_i = size of the tie group of y_i
@@ -1236,8 +1502,6 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
             tsb = (slopes[:, nt // 2 - 1] + slopes[:, nt // 2]) / 2.0
         ts, _ = unscale_checked(tsb, ey - ex)
         ts_int, _ = unscale_checked(np.median(Ys, axis=1) - tsb * np.median(Xs, axis=1), ey)
-        a = 1.0 - confidence if confidence > 0.5 else confidence
-        zq = stats.norm.ppf(a / 2.0)
         sigsq = (n * (n - 1) * (2 * n + 5) - ties_mk) / 18.0
         sigma = np.sqrt(sigsq)
         upper = np.minimum(np.round((nt - zq * sigma) / 2.0), nt - 1).astype(np.int64)
@@ -1261,7 +1525,6 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
         tau_b = np.where(denom_b > 0, s / np.sqrt(denom_b), _NAN)
         varok = var_s > 0
         z = np.where(varok, _mk_z(s, var_s), _NAN)
-        pz = np.where(varok, 2.0 * stats.norm.sf(np.abs(z)), _NAN)
         p_exact = np.full(m, _NAN)
         exact = untied & varok
         if n <= MANN_KENDALL_EXACT_MAX_N and exact.any():
@@ -1271,21 +1534,15 @@ def _trend_block(n, X, Y, sel, res, direction, alpha, confidence):
         mk_reason = np.where(varok, R.OK, R.join(R.CONSTANT_SERIES, R.ZERO_VARIANCE)).astype(object)
         res["mann_kendall_s"][sel], res["mann_kendall_var_s"][sel] = s, var_s
         res["mann_kendall_tau_a"][sel], res["mann_kendall_tau_b"][sel] = s / n0, tau_b
-        res["mann_kendall_z"][sel], res["mann_kendall_p_value"][sel] = z, pz
+        res["mann_kendall_z"][sel] = z
         res["mann_kendall_p_value_exact"][sel] = p_exact
         res["mann_kendall_reason"][sel] = mk_reason
 
         # ---- lag-1 Hamed-Rao (ranks of the Theil-Sen-detrended series, screened r1)
         if n < 3:
             res["hamed_rao_reason"][sel] = R.TOO_FEW_POINTS
-            p_hr = np.full(m, _NAN)
-            hr_reason = res["hamed_rao_reason"][sel]
         else:
-            p_hr, hr_reason = _hamed_rao_block(n, Xs, Ys, tsb, s, var_s, mk_reason, sel, res)
-
-    res["moves_in_therapeutic_direction"][sel] = _therapeutic(direction, ts, pz, alpha)
-    res["moves_in_therapeutic_direction_hamed_rao_lag1"][sel] = _therapeutic(direction, ts, p_hr, alpha)
-    res["reason"][sel] = _join_rows([ols_reason, ts_reason, mk_reason, hr_reason])
+            _hamed_rao_block(n, Xs, Ys, tsb, s, var_s, mk_reason, sel, res)
 
 
 def _hamed_rao_block(n, Xs, Ys, tsb, s, var_s, mk_reason, sel, res):
@@ -1298,27 +1555,25 @@ def _hamed_rao_block(n, Xs, Ys, tsb, s, var_s, mk_reason, sel, res):
         den = (vc * vc).sum(axis=1)
         r1 = np.where(den > 0, (vc[:, :-1] * vc[:, 1:]).sum(axis=1) / den, _NAN)
         r_ok = np.isfinite(r1)
-        screened = np.abs(r1) <= stats.norm.ppf(1.0 - 0.05 / 2.0) / np.sqrt(n)
+        screened = np.abs(r1) <= _Z_SCREEN / np.sqrt(n)
         r1_used = np.where(screened, 0.0, r1)
         factor = 1.0 + 2.0 * (n - 3) * r1_used / n
         f_ok = r_ok & (factor > 0)
         v_ok = f_ok & np.isfinite(var_s) & (var_s > 0)
         var_star = np.where(v_ok, var_s * factor, _NAN)
         z_hr = np.where(v_ok, _mk_z(s, var_star), _NAN)
-        p_hr = np.where(v_ok, 2.0 * stats.norm.sf(np.abs(z_hr)), _NAN)
         r1 = np.where(slope_ok, r1, _NAN)
         r_ok = r_ok & slope_ok
         f_ok, v_ok = f_ok & slope_ok, v_ok & slope_ok
-        var_star, z_hr, p_hr = (np.where(slope_ok, v, _NAN) for v in (var_star, z_hr, p_hr))
+        var_star, z_hr = (np.where(slope_ok, v, _NAN) for v in (var_star, z_hr))
         hr_reason = np.where(~slope_ok, R.NUMERICAL_FAILURE, np.where(~r_ok, R.ZERO_VARIANCE, np.where(
             ~f_ok, R.NUMERICAL_FAILURE, np.where(~v_ok, np.where(mk_reason == R.OK, R.ZERO_VARIANCE, mk_reason),
                                                  R.OK)))).astype(object)
         res["hamed_rao_lag1_rank_autocorrelation"][sel] = r1
         res["hamed_rao_lag1_correction_factor"][sel] = np.where(r_ok, factor, _NAN)
         res["mann_kendall_hamed_rao_lag1_var_s"][sel] = var_star
-        res["mann_kendall_hamed_rao_lag1_p_value"][sel] = p_hr
+        res["_hamed_rao_z"][sel] = z_hr
         res["hamed_rao_reason"][sel] = hr_reason
-    return p_hr, hr_reason
 
 
 def _mk_z(s, v):
@@ -1332,6 +1587,8 @@ def _therapeutic(direction, slope, p, alpha) -> np.ndarray:
     dec = direction == "decrease"
     known = (inc | dec) & np.isfinite(slope)
     in_dir = np.where(inc, slope > 0, slope < 0)
-    out = np.where(~known, "unknown", np.where(~in_dir, "no", np.where(
-        ~np.isfinite(p), "unknown", np.where(p < alpha, "yes", "no"))))
-    return out.astype(object)
+    code = np.where(~known, 0, np.where(~in_dir, 1, np.where(~np.isfinite(p), 0, np.where(p < alpha, 2, 1))))
+    return _FLAGS[code]
+
+
+_FLAGS = np.array(["unknown", "no", "yes"], dtype=object)

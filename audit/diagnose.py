@@ -25,9 +25,17 @@ import pandas as pd
 from audit import reasons as R
 from audit.ar1 import ar1_batch
 from audit.asymptotic_tests import breusch_godfrey_batch, ljung_box_batch
-from audit.autocorrelation import phase_lag1_batch, residual_lag1_batch
+from audit.autocorrelation import phase_lag1_r1, phase_r1_plus, residual_lag1_batch
 from audit.design import CaseDesign, case_design
-from audit.batch_effects import baseline_trends_batch, case_effects_batch
+from audit.batch_effects import (
+    ObservationColumns,
+    TextCodes,
+    baseline_trend_parts,
+    baseline_trends_batch,
+    case_effects_batch,
+    dense_rank,
+    increasing_within,
+)
 from audit.stacked import diagnose_series
 from audit.durbin_watson import dw_statistic_rows as _dw_rows, dw_zones as _zone
 from audit.durbin_watson import critical_bounds, dw_power, dw_pvalues_batch, dw_statistic
@@ -45,15 +53,6 @@ DEFAULT_POWER_RHO = 0.3
 CASE_ID_COLUMNS = ["case_key", "study", "case", "series", "design", "outcome_scale", "desired_direction"]
 
 ProgressFn = Callable[[int, int], None]
-
-
-def _split_cases(obs: pd.DataFrame):
-    """Yield (case_key, row slice) of observations sorted by case_key then session."""
-    keys = obs["case_key"].to_numpy()
-    if len(keys) == 0:
-        return []
-    bounds = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1], True])
-    return [(keys[b], slice(b, e)) for b, e in zip(bounds[:-1], bounds[1:])]
 
 
 def diagnose_group(Y: np.ndarray, design: CaseDesign, alpha: float, supplied_rho: np.ndarray | float | None,
@@ -202,42 +201,95 @@ def diagnose_cases(observations: pd.DataFrame, alpha: float = 0.05, supplied_rho
     ``supplied_rho``: one AR(1) coefficient for all cases, or a Series indexed by case_key
     (the review-wide shrunken value, a sensitivity grid point), for the extra GLS test.
     """
-    obs = observations.sort_values(["case_key", "session"], kind="stable").reset_index(drop=True)
-    pieces = _split_cases(obs)
-    case_rows = np.asarray([sl.start for _, sl in pieces], dtype=np.int64)
-    ident = obs.iloc[case_rows][CASE_ID_COLUMNS].reset_index(drop=True)
+    obs, key_codes = _sorted_by_case_and_session(observations)
+    condition = TextCodes(obs["condition"])
+    oc = ObservationColumns(obs, condition=condition, key_codes=key_codes)
+    case_rows = oc.case_start.astype(np.int64)
+    ident = obs[CASE_ID_COLUMNS].iloc[case_rows].reset_index(drop=True)
     if isinstance(supplied_rho, pd.Series):
         rho_per_case = ident["case_key"].map(supplied_rho).to_numpy(dtype=float)
     elif supplied_rho is not None:
-        rho_per_case = np.full(len(pieces), float(supplied_rho))
+        rho_per_case = np.full(len(case_rows), float(supplied_rho))
     else:
         rho_per_case = None
-    if not pieces:
+    if not len(case_rows):
         return _empty_tables(obs)
 
     # regression-based diagnostics: cases stacked by (n, k), batched linear algebra (audit.stacked)
     stats_frame = diagnose_series(
-        obs["session"].to_numpy(dtype=float), obs["outcome"].to_numpy(dtype=float), obs["phase_index"].to_numpy(),
-        obs["condition"].to_numpy().astype(str), obs["design"].to_numpy().astype(str),
-        obs["phase"].to_numpy().astype(str), case_rows, alpha, rho_per_case, power_rho, progress)
+        oc.session, oc.outcome, oc.phase_index, condition.strings(), TextCodes(obs["design"]).strings(),
+        TextCodes(obs["phase"]).strings(), case_rows, alpha, rho_per_case, power_rho, progress)
     cases = pd.concat([ident, stats_frame.reset_index(drop=True)], axis=1)
 
     # effect sizes and baseline trends, vectorised over cases (audit.batch_effects)
     rho_for_effects = cases["ar1_reml_rho"].to_numpy(dtype=float)
-    case_es, contrasts = case_effects_batch(obs, rho_for_effects, alpha)
-    trends = baseline_trends_batch(obs, alpha)
-    overall = trends[trends["scope"] == "all_baseline"].drop_duplicates("case_key").set_index("case_key")
-    trend_rows = overall.reindex(ident["case_key"]).reset_index(drop=True)
+    case_es, contrasts = case_effects_batch(oc, rho_for_effects, alpha)
+    phases, phase_case = _phase_table(oc)
+    # baseline trends: by scope straight from the arrays when the phase table has case positions
+    parts = baseline_trend_parts(oc, TREND_COLUMNS, alpha) if phase_case is not None else None
+    joined = None
+    if parts is not None:
+        trend_rows, per_phase = parts
+        joined = _with_phase_trends(phases, phase_case, per_phase)
+    if joined is None:
+        trends = baseline_trends_batch(oc, alpha)
+        overall = trends[trends["scope"] == "all_baseline"].drop_duplicates("case_key").set_index("case_key")
+        trend_rows = overall.reindex(ident["case_key"]).reset_index(drop=True)
+        per_phase = trends[trends["scope"] == "phase"]
+        if len(per_phase):
+            keep = ["case_key", "phase_index"] + [c for c in TREND_COLUMNS if c in per_phase]
+            pt = per_phase[keep].rename(columns={c: f"trend_{c}" for c in TREND_COLUMNS})
+            pt = pt.assign(phase_index=pt["phase_index"].astype("int64"))
+            phases = phases.merge(pt, on=["case_key", "phase_index"], how="left")
+    else:
+        phases = joined
     cases = pd.concat([cases, _effect_columns(case_es), _trend_columns(trend_rows)], axis=1)
-
-    phases = phase_table(obs)
-    per_phase = trends[trends["scope"] == "phase"]
-    if len(per_phase):
-        keep = ["case_key", "phase_index"] + [c for c in TREND_COLUMNS if c in per_phase]
-        pt = per_phase[keep].rename(columns={c: f"trend_{c}" for c in TREND_COLUMNS})
-        pt = pt.assign(phase_index=pt["phase_index"].astype("int64"))
-        phases = phases.merge(pt, on=["case_key", "phase_index"], how="left")
     return {"cases": cases, "phases": phases, "contrasts": contrasts.reset_index(drop=True)}
+
+
+def _with_phase_trends(phases: pd.DataFrame, phase_case: np.ndarray, per_phase: pd.DataFrame) -> pd.DataFrame | None:
+    """phases with the trend_* columns of its baseline phases, as a left merge on (case, phase_index)
+    gives them (NaN elsewhere); None when the rows cannot be matched that way (the caller merges)."""
+    if not len(per_phase):
+        return phases
+    cols = [c for c in TREND_COLUMNS if c in per_phase]
+    if any(per_phase[c].dtype not in (np.float64, "str") for c in cols):
+        return None
+    ph = phases["phase_index"].to_numpy()
+    tp = per_phase["phase_index"].to_numpy()
+    if ph.dtype.kind not in "iu" or not len(ph):
+        return None
+    lo = min(int(ph.min()), int(tp.min()))
+    width = max(int(ph.max()), int(tp.max())) - lo + 1
+    pk = phase_case.astype(np.int64) * width + (ph - lo)
+    tk = per_phase["case"].to_numpy().astype(np.int64) * width + (tp - lo)
+    order = np.argsort(tk, kind="stable")
+    tks = tk[order]
+    if (tks[1:] == tks[:-1]).any():
+        return None
+    pos = np.minimum(np.searchsorted(tks, pk), len(tks) - 1)
+    take = np.where(tks[pos] == pk, order[pos], -1)
+    out = phases.copy(deep=False)
+    for c in cols:
+        out[f"trend_{c}"] = per_phase[c].array.take(take, allow_fill=True)
+    return out
+
+
+def _sorted_by_case_and_session(observations: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray | None]:
+    """(observations sorted by case_key then session (stable) with a fresh index, codes of the
+    sorted distinct case keys of its rows or None). Input already in that order with strictly
+    increasing sessions within each case (clean observations) is used as it is."""
+    try:
+        codes = np.asarray(pd.factorize(observations["case_key"], sort=True)[0], dtype=np.int64)
+    except TypeError:  # keys that cannot be ordered: as the sort reports them
+        codes = np.zeros(0, dtype=np.int64)
+    if len(codes) and codes.min() >= 0:
+        session = observations["session"].to_numpy(dtype=float)
+        dk = codes[1:] - codes[:-1]
+        same = dk == 0
+        if not (dk < 0).any() and (session[1:][same] > session[:-1][same]).all():
+            return observations.reset_index(drop=True), codes
+    return observations.sort_values(["case_key", "session"], kind="stable").reset_index(drop=True), None
 
 
 def _empty_tables(obs: pd.DataFrame) -> dict[str, pd.DataFrame]:
@@ -279,10 +331,95 @@ def _trend_columns(rows: pd.DataFrame) -> pd.DataFrame:
     return frame
 
 
-def phase_table(obs: pd.DataFrame) -> pd.DataFrame:
-    """One row per case and phase: size, mean, sd, raw r1 and Huitema-McKean r1+ (batched by phase length)."""
+def phase_table(obs: pd.DataFrame | ObservationColumns) -> pd.DataFrame:
+    """One row per case and phase: size, mean, sd, raw r1 and Huitema-McKean r1+ (batched by phase length).
+
+    ``obs``: observations, or their columns as diagnose_cases reads them once (ObservationColumns).
+    """
+    return _phase_table(obs if isinstance(obs, ObservationColumns) else ObservationColumns(obs))[0]
+
+
+def _phase_table(oc: ObservationColumns) -> tuple[pd.DataFrame, np.ndarray | None]:
+    """(phase_table, position of each row's case among oc's cases, or None on the group-by path)."""
+    frame = oc.frame
+    ph = oc.phase_index
+    if (oc.key_rank is None or ph.dtype.kind not in "iu" or frame["session"].dtype != np.float64
+            or frame["phase"].hasnans or frame["condition"].hasnans):
+        return _phase_table_grouped(frame), None
+    # groups (case_key, phase_index) as one integer, in the order of both keys
+    ph_uniq, ph_rank = dense_rank(ph)
+    g = oc.key_rank * max(len(ph_uniq), 1) + ph_rank
+    x = oc.session
+    yv = oc.outcome
+    # rows by group, then session (stable); equal sessions within a group go the general way
+    if len(g) > 1 and not increasing_within(g, x):
+        order = np.lexsort((x, g))
+        if not increasing_within(g[order], x[order]):
+            return _phase_table_grouped(frame), None
+        gs = g[order]
+    else:
+        order, gs = None, g
+    nrow = len(gs)
+    if nrow == 0:
+        return _phase_table_grouped(frame), None
+    starts = np.flatnonzero(np.r_[True, gs[1:] != gs[:-1]])
+    sizes = np.diff(np.r_[starts, nrow])
+    first_row = starts if order is None else order[starts]
+    ys = yv if order is None else yv[order]
     # mean and sd from the outcomes scaled by a power of two per phase (exact): no overflow near
     # the float limits; the scale is undone afterwards
+    top = np.maximum.reduceat(np.abs(np.where(np.isfinite(ys), ys, 0.0)), starts)
+    ex_group = np.frexp(top)[1].astype(np.int64)
+    ex_sorted = np.repeat(ex_group, sizes)
+    if order is None:
+        ex_row = ex_sorted
+    else:
+        ex_row = np.empty(nrow, dtype=np.int64)
+        ex_row[order] = ex_sorted
+    # mean and sd by pandas on the integer group key (the same kernels and row order as a group-by
+    # on the two key columns); sessions increase strictly within a group: first and last are its
+    # min and max
+    by_group = pd.Series(np.ldexp(yv, -ex_row)).groupby(g, sort=True)
+    xs = x if order is None else x[order]
+    table = pd.DataFrame({
+        "case_key": frame["case_key"].array.take(first_row),
+        "phase_index": ph[first_row],
+        "phase": frame["phase"].array.take(first_row),
+        "condition": frame["condition"].array.take(first_row),
+        "n": sizes.astype(np.int64),
+        "first_session": xs[starts],
+        "last_session": xs[starts + sizes - 1],
+        "mean": by_group.mean().to_numpy(),
+        "sd": by_group.std().to_numpy(),
+    })
+    return _phase_r1(table, ex_group, ys, starts), oc.case_id[first_row]
+
+
+def _phase_r1(table: pd.DataFrame, ex_group: np.ndarray, y: np.ndarray, starts: np.ndarray) -> pd.DataFrame:
+    """Undo the scaling of mean and sd, add raw r1 and r1+ per phase (y: outcomes by phase, in
+    session order; phase i is y[starts[i]:starts[i] + n])."""
+    overflow = np.zeros(len(table), dtype=bool)
+    for col in ("mean", "sd"):
+        values = unscale(table[col].to_numpy(dtype=float), ex_group)
+        overflow |= np.isfinite(table[col].to_numpy(dtype=float)) & ~np.isfinite(values)
+        table[col] = np.where(np.isfinite(values), values, np.nan)
+    sizes = table["n"].to_numpy()
+    r1 = np.full(len(table), np.nan)
+    reason = np.full(len(table), R.OK, dtype=object)
+    for n_len in np.unique(sizes):
+        rows = np.flatnonzero(sizes == n_len)
+        r1[rows], reason[rows] = phase_lag1_r1(y[starts[rows][:, None] + np.arange(n_len)])
+    # r1+ and its test for all phases at once (NaN wherever r1 is)
+    r1_plus, _, z, _, p_two = phase_r1_plus(sizes, r1)
+    for name, values in (("r1", r1), ("r1_plus", r1_plus), ("r1_plus_z", z), ("r1_plus_p_value", p_two)):
+        table[name] = values
+    reason[overflow] = [R.join(r, R.NUMERICAL_FAILURE) for r in reason[overflow]]
+    table["r1_reason"] = reason
+    return table
+
+
+def _phase_table_grouped(obs: pd.DataFrame) -> pd.DataFrame:
+    """phase_table by a pandas group-by on the key columns (any input, e.g. missing keys or labels)."""
     yv = obs["outcome"].to_numpy(dtype=float)
     work = obs.assign(_abs=np.abs(np.where(np.isfinite(yv), yv, 0.0)))
     top = work.groupby(["case_key", "phase_index"], sort=False)["_abs"].transform("max").to_numpy()
@@ -292,30 +429,11 @@ def phase_table(obs: pd.DataFrame) -> pd.DataFrame:
     table = g.agg(phase=("phase", "first"), condition=("condition", "first"), n=("outcome", "size"),
                   first_session=("session", "min"), last_session=("session", "max"),
                   mean=("_scaled", "mean"), sd=("_scaled", "std"), _ex=("_ex", "first")).reset_index()
-    overflow = np.zeros(len(table), dtype=bool)
-    for col in ("mean", "sd"):
-        values = unscale(table[col].to_numpy(dtype=float), table["_ex"].to_numpy())
-        overflow |= np.isfinite(table[col].to_numpy(dtype=float)) & ~np.isfinite(values)
-        table[col] = np.where(np.isfinite(values), values, np.nan)
+    ex_group = table["_ex"].to_numpy()
     table = table.drop(columns="_ex")
     y = obs.sort_values(["case_key", "phase_index", "session"], kind="stable")["outcome"].to_numpy(dtype=float)
-    starts = np.r_[0, np.cumsum(table["n"].to_numpy())[:-1]]
-    cols = {name: np.full(len(table), np.nan) for name in ("r1", "r1_plus", "r1_plus_z", "r1_plus_p_value")}
-    reason = np.full(len(table), R.OK, dtype=object)
-    for n_len, rows in table.groupby("n").groups.items():
-        rows = np.asarray(rows)
-        Y = np.vstack([y[starts[r]:starts[r] + n_len] for r in rows])
-        res = phase_lag1_batch(Y)
-        cols["r1"][rows] = res["r1"].to_numpy()
-        cols["r1_plus"][rows] = res["r1_plus"].to_numpy()
-        cols["r1_plus_z"][rows] = res["z"].to_numpy()
-        cols["r1_plus_p_value"][rows] = res["p_value_two_sided"].to_numpy()
-        reason[rows] = res["reason"].to_numpy()
-    for name, values in cols.items():
-        table[name] = values
-    reason[overflow] = [R.join(r, R.NUMERICAL_FAILURE) for r in reason[overflow]]
-    table["r1_reason"] = reason
-    return table
+    starts = np.r_[0, np.cumsum(table["n"].to_numpy())[:-1]].astype(np.int64)
+    return _phase_r1(table, ex_group, y, starts)
 
 
 def diagnose_case(session, outcome, phase_index, condition, design: str, phase_label=None, alpha: float = 0.05,

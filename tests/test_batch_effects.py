@@ -405,3 +405,89 @@ def test_values_near_float_limits_batch_equals_per_case():
     assert trends["theil_sen_reason"].str.contains(R.NUMERICAL_FAILURE).any()
     assert trends["ols_reason"].str.contains(R.NUMERICAL_FAILURE).any()
     assert np.isfinite(contrasts.loc[contrasts["case_key"].str.contains("/huge/"), "smd_pooled_sd"]).all()
+
+
+# ------------------------------------------------------------------------------------------------
+# internal shortcuts of the batch path against their plain definitions
+# ------------------------------------------------------------------------------------------------
+
+
+def test_pairwise_counts_equal_plain_pair_loops():
+    from audit.batch_effects import _pairwise_counts
+
+    rng = np.random.default_rng(3)
+    pool = np.array([0.0, -0.0, 1.0, 2.0, 3.5, np.nan, np.inf, -np.inf, 1e308, -1e308, 5e-324])
+    for trial in range(150):
+        nseg = int(rng.integers(2, 30))
+        seg_len = rng.integers(0 if trial % 5 == 0 else 1, 14, nseg)
+        seg_start = np.r_[0, np.cumsum(seg_len)[:-1]].astype(np.int64)
+        total = int(seg_len.sum())
+        values = (rng.choice(pool[: int(rng.integers(3, len(pool) + 1))], total) if trial % 2
+                  else np.round(rng.normal(size=total), 1))
+        rows = rng.permutation(total)
+        m = int(rng.integers(1, 25))
+        bseg, tseg = rng.integers(0, nseg, m), rng.integers(0, nseg, m)
+        sign = rng.choice([-1.0, 1.0], m)
+        with np.errstate(all="ignore"):
+            pos, neg, ties, s_trend, tie_sum = _pairwise_counts(values, rows, seg_start, seg_len, bseg, tseg, sign)
+        for i in range(m):
+            a = values[rows[seg_start[bseg[i]]:seg_start[bseg[i]] + seg_len[bseg[i]]]] * sign[i]
+            b = values[rows[seg_start[tseg[i]]:seg_start[tseg[i]] + seg_len[tseg[i]]]] * sign[i]
+            # plain definitions: every (baseline, treatment) pair, every later-earlier baseline pair,
+            # tie groups t of the finite pooled values with sum(t^3 - t)
+            assert pos[i] == sum(int(y > x) for x in a for y in b)
+            assert neg[i] == sum(int(y < x) for x in a for y in b)
+            assert ties[i] == sum(int(y == x) for x in a for y in b)
+            assert s_trend[i] == sum(np.sign(int(a[j] > a[k]) - int(a[j] < a[k]))
+                                     for k in range(len(a)) for j in range(k + 1, len(a)))
+            pooled = np.r_[a, b]
+            fin = pooled[np.isfinite(pooled)]
+            t = np.array([np.sum(fin == v) for v in fin], dtype=float)
+            assert tie_sum[i] == np.sum(t * t - 1.0)
+
+
+def test_column_shortcuts_equal_their_plain_forms():
+    from audit.batch_effects import TextCodes, _normalize_directions, _unique_rows, dense_rank
+    from audit.trend import normalize_direction
+
+    text = pd.Series(["b", " A ", "b", "nan", "a\x00"] * 3, dtype="str")
+    codes = TextCodes(text)
+    expected = text.to_numpy().astype(str)
+    assert codes.strings().dtype == expected.dtype and np.array_equal(codes.strings(), expected)
+    with_missing = pd.Series(["b", None, "c"], dtype=object)
+    assert np.array_equal(TextCodes(with_missing).strings(), with_missing.to_numpy().astype(str))
+    raw = np.empty(7, dtype=object)
+    raw[:] = ["increase", " Decrease ", None, np.nan, "sideways", "increase", pd.NA]
+    assert _normalize_directions(raw).tolist() == [normalize_direction(v) for v in raw]
+    rng = np.random.default_rng(5)
+    keys = rng.integers(-3, 4, size=(200, 3))
+    uniq, inv = _unique_rows(keys)
+    ref_uniq, ref_inv = np.unique(keys, axis=0, return_inverse=True)
+    assert np.array_equal(uniq, ref_uniq) and np.array_equal(inv, ref_inv.ravel())
+    v = rng.integers(-5, 9, size=300)
+    assert all(np.array_equal(x, y.ravel()) for x, y in zip(dense_rank(v), np.unique(v, return_inverse=True)))
+
+
+def test_prepared_columns_and_shuffled_input_give_the_same_tables(synthetic):
+    from audit.batch_effects import ObservationColumns
+
+    obs, rho, _ = synthetic
+    cases, contrasts = case_effects_batch(obs, rho)
+    prepared = ObservationColumns(obs)
+    got_cases, got_contrasts = case_effects_batch(prepared, rho)
+    pd.testing.assert_frame_equal(got_cases, cases, check_exact=True)
+    pd.testing.assert_frame_equal(got_contrasts, contrasts, check_exact=True)
+    pd.testing.assert_frame_equal(baseline_trends_batch(prepared), baseline_trends_batch(obs), check_exact=True)
+    # rows of a case out of session order (cases with distinct sessions): the effect sizes sort
+    # them inside the batch path as the reference does
+    keys = obs["case_key"].unique()
+    repeated = obs.loc[obs.duplicated(["case_key", "session"]), "case_key"].unique()
+    keep = ~np.isin(keys, repeated)
+    part = obs[obs["case_key"].isin(keys[keep])].reset_index(drop=True)
+    case_no = pd.factorize(part["case_key"])[0]
+    flipped = part.iloc[np.lexsort((-np.arange(len(part)), case_no))].reset_index(drop=True)
+    want_cases, want_contrasts = case_effects_batch(part, rho[keep])
+    got_cases, got_contrasts = case_effects_batch(flipped, rho[keep])
+    assert not flipped["session"].equals(part["session"])
+    pd.testing.assert_frame_equal(got_cases, want_cases, check_exact=True)
+    pd.testing.assert_frame_equal(got_contrasts, want_contrasts, check_exact=True)

@@ -213,3 +213,35 @@ def test_effect_sizes_and_baseline_trend_join_the_case_table(fixture_tables):
         assert row["tau"] == pytest.approx(2 * row["nap"] - 1, abs=1e-12)
     assert set(cases["baseline_moves_in_therapeutic_direction"]) <= {"yes", "no", "unknown"}
     assert {"case_key", "contrast", "nap", "tau"} <= set(tables["contrasts"].columns)
+
+
+def test_phase_table_equals_the_group_by_on_the_key_columns(fixture_tables):
+    from audit.diagnose import _phase_table_grouped, phase_table
+
+    obs, _ = fixture_tables
+    rng = np.random.default_rng(11)
+    srt = obs.sort_values(["case_key", "session"], kind="stable").reset_index(drop=True)
+    shuffled = obs.iloc[rng.permutation(len(obs))].reset_index(drop=True)
+    repeats = srt.assign(session=np.floor(srt["session"] / 2))  # sessions repeated within phases
+    for frame in (srt, shuffled, repeats):
+        pd.testing.assert_frame_equal(phase_table(frame), _phase_table_grouped(frame), check_exact=True)
+
+
+def test_row_order_of_the_input_does_not_change_the_tables(fixture_tables):
+    from audit.batch_effects import baseline_trends_batch
+
+    obs, tables = fixture_tables
+    shuffled = obs.iloc[np.random.default_rng(12).permutation(len(obs))].reset_index(drop=True)
+    again = diagnose_cases(shuffled)
+    for name in ("cases", "phases", "contrasts"):
+        pd.testing.assert_frame_equal(again[name], tables[name], check_exact=True)
+    # the trend columns of the phase table are those of the baseline-trend table, joined by key
+    srt = obs.sort_values(["case_key", "session"], kind="stable").reset_index(drop=True)
+    trends = baseline_trends_batch(srt)
+    per_phase = trends[trends["scope"] == "phase"].drop(columns="scope")
+    merged = tables["phases"][["case_key", "phase_index"]].merge(
+        per_phase.assign(phase_index=per_phase["phase_index"].astype("int64")), on=["case_key", "phase_index"],
+        how="left")
+    for col in ("ols_slope", "theil_sen_slope", "mann_kendall_p_value", "reason"):
+        pd.testing.assert_series_equal(tables["phases"][f"trend_{col}"], merged[col], check_names=False,
+                                       check_exact=True)
