@@ -33,6 +33,7 @@ __all__ = [
     "ljung_box",
     "ljung_box_batch",
     "ljung_box_default_lags",
+    "ljung_box_rows",
 ]
 
 BG_METHOD = "Breusch-Godfrey LM, lag 1, asymptotic=True"
@@ -205,14 +206,17 @@ def breusch_godfrey(residuals, X, y=None) -> BreuschGodfrey:
                           float(stats.f.sf(f, 1, df_denom)))
 
 
-def ljung_box_batch(E, lags: int | None = None, y=None) -> pd.DataFrame:
-    """``ljung_box`` for each row of E (series of equal length n); optional ``y`` as in
-    ``breusch_godfrey_batch``."""
+def ljung_box_rows(E, h: int, y=None, data_reasons=None) -> tuple[np.ndarray, np.ndarray]:
+    """Ljung-Box Q(h) and reason per row of E (series of equal length n), without a frame.
+
+    The arrays of ``ljung_box_batch`` (statistic, reason); Q is NaN wherever a reason is set.
+    ``data_reasons``: the codes ``_data_reasons(E, y)`` when the caller already has them.
+    """
     E = np.asarray(E, dtype=float)
     if E.ndim == 1:
         E = E[None, :]
     m, n = E.shape
-    h = ljung_box_default_lags(n) if lags is None else int(lags)
+    h = int(h)
     reason = np.full(m, R.OK, dtype=object)
     finite = np.all(np.isfinite(E), axis=1)
     Ef = np.where(np.isfinite(E), E, 0.0)
@@ -221,7 +225,7 @@ def ljung_box_batch(E, lags: int | None = None, y=None) -> pd.DataFrame:
     den = np.sum(D**2, axis=1)
     scale = np.sum(Ef**2, axis=1)
     reason[~(den > 1e-20 * scale) | ~(scale > 0)] = R.ZERO_RESIDUAL_VARIANCE
-    data = _data_reasons(E, y)
+    data = _data_reasons(E, y) if data_reasons is None else np.asarray(data_reasons, dtype=object)
     reason = np.where(data != R.OK, data, reason)
     if n < 3 or h < 1 or h >= n:
         reason[:] = R.TOO_FEW_POINTS
@@ -234,7 +238,18 @@ def ljung_box_batch(E, lags: int | None = None, y=None) -> pd.DataFrame:
             rj = np.sum(D[:, j:] * D[:, :-j], axis=1) / safe
             q += rj**2 / (n - j)
         q *= n * (n + 2.0)
-    q = np.where(ok, q, np.nan)
+    return np.where(ok, q, np.nan), reason
+
+
+def ljung_box_batch(E, lags: int | None = None, y=None) -> pd.DataFrame:
+    """``ljung_box`` for each row of E (series of equal length n); optional ``y`` as in
+    ``breusch_godfrey_batch``."""
+    E = np.asarray(E, dtype=float)
+    if E.ndim == 1:
+        E = E[None, :]
+    m, n = E.shape
+    h = ljung_box_default_lags(n) if lags is None else int(lags)
+    q, reason = ljung_box_rows(E, h, y)
     return pd.DataFrame({
         "statistic": q,
         "df": np.full(m, h),

@@ -36,7 +36,7 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
-from audit.asymptotic_tests import bg_lm_rows, ljung_box_batch, ljung_box_default_lags
+from audit.asymptotic_tests import bg_lm_rows, ljung_box_default_lags, ljung_box_rows
 from audit.durbin_watson import dw_statistic_rows as _dw_rows, dw_zones as _zone
 from audit import reasons as R
 from audit.ar1 import _GRID, _brackets, _objective_from_pieces, gls_rss_pieces
@@ -61,7 +61,8 @@ _DW_RANK_RTOL = 1e-10  # smallest/largest singular value below this: no DW null 
 _EIG_ZERO_RTOL = 1e-12
 _EPS = np.finfo(float).eps
 
-# Fixed Imhof panels for the Newton search of critical values (quadform's layout, no refinement).
+# Fixed Imhof panels for the Newton search of critical values (u panel, then width 1.5 in
+# log u; no refinement).
 _G7_NODES = KRONROD_NODES[GAUSS7_WEIGHTS_ON_KRONROD_NODES > 0]
 _G7_WEIGHTS = GAUSS7_WEIGHTS_ON_KRONROD_NODES[GAUSS7_WEIGHTS_ON_KRONROD_NODES > 0]
 _FIRST_PANEL_END = 0.5
@@ -70,7 +71,7 @@ _TAIL_TOL = 1e-12
 _NEWTON_STEP_TOL = 1e-4
 _NEWTON_MAX_ITER = 30
 _POLISH_MAX_CORRECTION = 1e-7
-_FUSED_BLOCK = 400_000  # rows * nodes * p per block in the fused Imhof evaluation
+_FUSED_BLOCK = 30_000  # rows * nodes * p per block in the fused Imhof evaluation (cache-sized)
 
 # AR(1) score search
 _SECANT_MAX_ITER = 60
@@ -552,7 +553,7 @@ def _imhof_cdf_density(lam: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
     Imhof (1961): F = 1/2 - (1/pi) int_0^inf sin(theta)/(u rho) du; differentiating under the
     integral, dF/dc = (1/(2 pi)) int_0^inf (1/rho) [cos(theta) sum 1/(1+x_j^2)
-    - sin(theta) sum x_j/(1+x_j^2)] du, x_j = lam_j u.  Fixed panels as in ``audit.quadform``
+    - sin(theta) sum x_j/(1+x_j^2)] du, x_j = lam_j u.  Fixed panels
     (u in [0, 1/2] after scaling by sqrt(sum lam^2), then width 1.5 in log u up to the tail
     bound), 7-point Gauss rule on each: accurate to about 1e-8, enough to steer Newton steps.
     """
@@ -580,15 +581,18 @@ def _imhof_cdf_density(lam: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     F = np.empty(r)
     f = np.empty(r)
     block = max(1, _FUSED_BLOCK // (u_all.size * max(p, 1)))
+    ones = np.ones(p)  # sums over the eigenvalues as BLAS products (faster than short-axis sums)
     for s0 in range(0, r, block):
         sl = slice(s0, s0 + block)
         x = lt[sl, None, :] * u_all[None, :, None]
         x2 = 1.0 + x * x
-        theta = 0.5 * np.arctan(x).sum(axis=2)
-        inv_rho = np.exp(-0.25 * np.log(x2).sum(axis=2))
+        theta = 0.5 * (np.arctan(x) @ ones)
+        np.divide(x, x2, out=x)  # x / (1 + x^2)
+        s2 = x @ ones
+        np.reciprocal(x2, out=x)  # 1 / (1 + x^2)
+        s1 = x @ ones
+        inv_rho = np.exp(-0.25 * (np.log(x2, out=x2) @ ones))
         sin_t, cos_t = np.sin(theta), np.cos(theta)
-        s1 = (1.0 / x2).sum(axis=2)
-        s2 = (x / x2).sum(axis=2)
         msk = mask[sl]
         F[sl] = 0.5 - (np.where(msk, sin_t * inv_rho, 0.0) @ wF) / math.pi
         f[sl] = (np.where(msk, inv_rho * (cos_t * s1 - sin_t * s2), 0.0) @ wf) / (2.0 * math.pi * s[sl])
@@ -654,9 +658,9 @@ _METHODS = ("REML", "ML")
 def _spd_inverse(M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Inverse and log-determinant of symmetric positive definite matrices (..., k, k).
 
-    Cholesky M = LL' (LAPACK), L^-1 by forward substitution vectorised over the stack,
-    M^-1 = L^-T L^-1, log|M| = 2 sum log L_jj; falls back to inv/slogdet if M is not
-    numerically positive definite.
+    Cholesky M = LL' (LAPACK), L^-1 row by row by forward substitution vectorised over the
+    stack (batched matrix products), M^-1 = L^-T L^-1, log|M| = 2 sum log L_jj; falls back
+    to inv/slogdet if M is not numerically positive definite.
     """
     k = M.shape[-1]
     try:
@@ -666,11 +670,15 @@ def _spd_inverse(M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     flat = L.reshape(-1, k, k)
     Li = np.zeros_like(flat)
     diag = np.diagonal(flat, axis1=1, axis2=2)
-    for j in range(k):
-        row = -np.einsum("ni,nik->nk", flat[:, j, :j], Li[:, :j, :]) if j else np.zeros((flat.shape[0], k))
-        row[:, j] += 1.0
-        Li[:, j, :] = row / diag[:, j, None]
-    Minv = np.einsum("nji,njk->nik", Li, Li).reshape(M.shape)
+    inv_d = 1.0 / diag
+    if k:
+        Li[:, 0, 0] = inv_d[:, 0]
+    for j in range(1, k):  # row j of L^-1: (e_j - L[j, :j] L^-1[:j, :]) / L[j, j]
+        row = (flat[:, j:j + 1, :j] @ Li[:, :j, :])[:, 0, :]
+        row *= -inv_d[:, j, None]
+        row[:, j] += inv_d[:, j]
+        Li[:, j, :] = row
+    Minv = (Li.transpose(0, 2, 1) @ Li).reshape(M.shape)
     logdet = 2.0 * np.sum(np.log(diag), axis=1).reshape(M.shape[:-2])
     return Minv, logdet
 
@@ -717,56 +725,108 @@ class _AR1Rows:
 
 
 def _grid_cholesky(A1: np.ndarray, A2: np.ndarray):
-    """Cholesky factors and log|M(g)| of M(g) = I - g A1 + g^2 A2 on the REML grid: (U, G, ...)."""
-    g = _GRID[None, :, None, None]
+    """Cholesky factors and log|M(g)| (U, G) of M(g) = I - g A1 + g^2 A2 on the REML grid.
+
+    Returns (L, logdet, lower).  lower: L[i][j] (i >= j) the (U, G) array of the (i, j) entries
+    of the factors of every design and grid point; the column-by-column factorisation then
+    runs on contiguous vectors over all designs and grid points at once (much faster than one
+    LAPACK call per small matrix).  Where M(g) is not numerically positive definite (a pivot
+    <= 0 anywhere): the symmetric square roots V sqrt(W) of all M(g), shape (U, G, k, k).
+    """
+    g = _GRID
+    g2 = g**2
     k = A1.shape[-1]
-    Mxx = np.eye(k) - g * A1[:, None] + g**2 * A2[:, None]
-    try:
-        L = np.linalg.cholesky(Mxx)
-    except np.linalg.LinAlgError:  # not numerically positive definite: symmetric square root
-        w, v = np.linalg.eigh(Mxx)
-        L = v * np.sqrt(np.clip(w, 0.0, None))[..., None, :]
-        return L, np.sum(np.log(w), axis=-1), False
-    return L, 2.0 * np.sum(np.log(np.diagonal(L, axis1=-2, axis2=-1)), axis=-1), True
+    L = [[None] * k for _ in range(k)]
+    for j in range(k):
+        d = 1.0 - g * A1[:, j, j, None] + g2 * A2[:, j, j, None]
+        for p_ in range(j):
+            d -= L[j][p_] * L[j][p_]
+        if not np.all(d > 0):
+            break
+        ljj = np.sqrt(d)
+        L[j][j] = ljj
+        for i in range(j + 1, k):
+            acc = -g * A1[:, i, j, None] + g2 * A2[:, i, j, None]
+            for p_ in range(j):
+                acc -= L[i][p_] * L[j][p_]
+            acc /= ljj
+            L[i][j] = acc
+    else:
+        logdet = np.zeros((A1.shape[0], g.size))
+        for j in range(k):
+            logdet += np.log(L[j][j])
+        return L, 2.0 * logdet, True
+    # not numerically positive definite: symmetric square root
+    Mxx = np.eye(k) - g[None, :, None, None] * A1[:, None] + g2[None, :, None, None] * A2[:, None]
+    w, v = np.linalg.eigh(Mxx)
+    return v * np.sqrt(np.clip(w, 0.0, None))[..., None, :], np.sum(np.log(w), axis=-1), False
 
 
 def _grid_values(rows: _AR1Rows, du: np.ndarray, L: np.ndarray, logdet: np.ndarray, lower: bool):
-    """-2 loglik on the grid for REML and ML, (m, G) each: rss = e'P'Pe - |L^-1 m|^2."""
+    """-2 loglik on the grid for REML and ML, (m, G) each: rss = e'P'Pe - |L^-1 m|^2 (L and
+    its layout from ``_grid_cholesky``)."""
     g = _GRID
+    g2 = g**2
     m = rows.qe1.shape[0]
     G = g.size
     k = rows.k
     out = {meth: np.empty((m, G)) for meth in _METHODS}
     for s0 in range(0, m, _ROW_BLOCK):
         sl = slice(s0, s0 + _ROW_BLOCK)
-        qe1, qe2 = rows.qe1[sl][:, None, :], rows.qe2[sl][:, None, :]
-        mxe = -g[None, :, None] * qe1 + (g**2)[None, :, None] * qe2
         ee0, ee1, ee2 = rows.ee0[sl, None], rows.ee1[sl, None], rows.ee2[sl, None]
-        mee = ee0 - g[None, :] * ee1 + (g**2)[None, :] * ee2
-        Lr = L[du[sl]]
-        if lower:  # forward substitution, vectorised over rows and grid points
-            w = np.empty_like(mxe)
+        mee = ee0 - g[None, :] * ee1 + g2[None, :] * ee2
+        d = du[sl]
+        if lower:  # forward substitution on (rows, G) vectors, one entry of L at a time
+            qe1, qe2 = rows.qe1[sl], rows.qe2[sl]
+            w = []
+            ssq = np.zeros_like(mee)
             for j in range(k):
-                acc = mxe[..., j]
-                if j:
-                    acc = acc - np.einsum("mgp,mgp->mg", Lr[..., j, :j], w[..., :j])
-                w[..., j] = acc / Lr[..., j, j]
+                acc = -g * qe1[:, j, None] + g2 * qe2[:, j, None]
+                for p_ in range(j):
+                    acc -= L[j][p_][d] * w[p_]
+                wj = acc / L[j][j][d]
+                w.append(wj)
+                ssq += wj * wj
+            rss = mee - ssq
         else:  # L = V sqrt(W): |L^-1 m|^2 = m' M^-1 m
-            w = np.linalg.solve(Lr, mxe[..., None])[..., 0]
-        rss = mee - np.sum(w * w, axis=2)
-        ld = logdet[du[sl]]
+            qe1, qe2 = rows.qe1[sl][:, None, :], rows.qe2[sl][:, None, :]
+            mxe = -g[None, :, None] * qe1 + g2[None, :, None] * qe2
+            w = np.linalg.solve(L[d], mxe[..., None])[..., 0]
+            rss = mee - np.sum(w * w, axis=2)
+        ld = logdet[d]
         with np.errstate(invalid="ignore", divide="ignore"):
             for meth in _METHODS:
                 out[meth][sl] = _objective_from_pieces(meth, rows.n, rows.k, g[None, :], rss, 0.0, ld, 0.0)[0]
     return out
 
 
-def _score_root(rows: _AR1Rows, reml: np.ndarray, lo, hi, d_lo, d_hi) -> np.ndarray:
+def _hermite_start(lo, hi, f_lo, f_hi, d_lo, d_hi) -> np.ndarray:
+    """Stationary point in (lo, hi) of the cubic through the objective values and slopes at both
+    ends (d_lo < 0 < d_hi), NaN where it cannot be found: a starting point for the score root
+    much closer than the secant of the slopes alone."""
+    h = hi - lo
+    D0, D1 = d_lo * h, d_hi * h  # slopes in s = (x - lo) / h
+    dF = f_hi - f_lo
+    qa = 3.0 * (D0 + D1) - 6.0 * dF  # p'(s) = qa s^2 + qb s + D0
+    qb = 6.0 * dF - 4.0 * D0 - 2.0 * D1
+    disc = qb * qb - 4.0 * qa * D0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        root = np.sqrt(disc)
+        # the root of p' where it rises through zero; the stable form of the quadratic formula
+        s = np.where(qb >= 0, -2.0 * D0 / (qb + root), (root - qb) / (2.0 * qa))
+        s = np.where(np.abs(qa) <= 1e-12 * (np.abs(qb) + np.abs(D0)), -D0 / qb, s)
+    return np.where((s > 0) & (s < 1), lo + s * h, np.nan)
+
+
+def _score_root(rows: _AR1Rows, reml: np.ndarray, lo, hi, d_lo, d_hi, start=None) -> np.ndarray:
     """Root of the score in [lo, hi] (d_lo < 0 < d_hi), all rows at once: secant steps through
     the last two iterates, kept inside the shrinking sign-change bracket (bisection when a
-    step leaves it), until the step or the bracket is below 1e-12."""
+    step leaves it), until the step or the bracket is below 1e-12.  ``start``: first iterate
+    (where finite and inside the bracket; otherwise the secant point of the slopes)."""
     a, b = lo.copy(), hi.copy()
     x = a - d_lo * (b - a) / (d_hi - d_lo)
+    if start is not None:
+        x = np.where(np.isfinite(start) & (start > a) & (start < b), start, x)
     x = np.where((x > a) & (x < b), x, 0.5 * (a + b))
     use_lo = np.abs(d_lo) < np.abs(d_hi)
     xp, fp = np.where(use_lo, a, b), np.where(use_lo, d_lo, d_hi)  # previous iterate
@@ -822,7 +882,9 @@ def _ar1_fit(rows: _AR1Rows, du: np.ndarray, designs: _Designs):
     Grid and bracket of ``audit.ar1.ar1_batch``: -2 loglik at every grid point (Cholesky of
     M(g) per design), the score at the best grid point and at the neighbour it points to
     (all that the bracket rule reads), then inside a bracket with a sign change of the score
-    safeguarded secant steps (both methods stacked in one search), otherwise its bisection.
+    safeguarded secant steps (both methods stacked in one search; first iterate the
+    stationary point of the cubic through the values and slopes at the bracket ends),
+    otherwise its bisection.
     """
     used = np.unique(du)
     L, logdet, lower = _grid_cholesky(designs.A1[used], designs.A2[used])
@@ -842,9 +904,10 @@ def _ar1_fit(rows: _AR1Rows, du: np.ndarray, designs: _Designs):
     est = np.where(done, done_rho, np.nan)
     ill = np.flatnonzero(~done & ok)
     if ill.size:
-        d_lo = d_all[ill, np.searchsorted(_GRID, lo[ill])]
-        d_hi = d_all[ill, np.searchsorted(_GRID, hi[ill])]
-        est[ill] = _score_root(both.take(ill), reml[ill], lo[ill], hi[ill], d_lo, d_hi)
+        jl, jh = np.searchsorted(_GRID, lo[ill]), np.searchsorted(_GRID, hi[ill])
+        d_lo, d_hi = d_all[ill, jl], d_all[ill, jh]
+        start = _hermite_start(lo[ill], hi[ill], f_all[ill, jl], f_all[ill, jh], d_lo, d_hi)
+        est[ill] = _score_root(both.take(ill), reml[ill], lo[ill], hi[ill], d_lo, d_hi, start)
     bis = np.flatnonzero(~done & ~ok)
     if bis.size:
         est[bis] = _bisect(both.take(bis), reml[bis], lo[bis], hi[bis])
@@ -1096,7 +1159,8 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
     den = np.sum(E_sc**2, axis=1)
     rr = np.full(m, R.OK, dtype=object)
     rr[~(den > 0)] = R.ZERO_RESIDUAL_VARIANCE
-    rr = np.where(rr == R.OK, series_reasons(Y, E_fill), rr)
+    data_r = series_reasons(Y, E_fill)  # also the data reasons of Breusch-Godfrey and Ljung-Box
+    rr = np.where(rr == R.OK, data_r, rr)
     rr[~np.all(np.isfinite(E_ref), axis=1)] = R.NON_FINITE_INPUT
     r1_reason = np.where(has_x, rr, r1_reason)
     mean_r = np.where(has_x, des.r1_mean[du], np.nan)
@@ -1117,9 +1181,9 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
     out["r1_p_value"] = pz
 
     # ---- Breusch-Godfrey (lag 1) and Ljung-Box (asymptotic_tests)
-    out["bg_statistic"], out["bg_p_value"] = _breusch_godfrey(E_ref, Y, des, du, xreason, x_finite, n, k)
+    out["bg_statistic"], out["bg_p_value"] = _breusch_godfrey(E_ref, data_r, des, du, xreason, x_finite, n, k)
     h_lb = ljung_box_default_lags(n)
-    lb_q, lb_p = _ljung_box(E_ref, Y, h_lb)
+    lb_q, lb_p = _ljung_box(E_ref, Y, h_lb, data_r)
     out["lb_statistic"] = lb_q
     out["lb_lags"] = np.full(m, h_lb)
     out["lb_p_value"] = lb_p
@@ -1234,8 +1298,11 @@ def _power_values(des: _Designs, rows: np.ndarray, c: np.ndarray, rho: float) ->
     return out
 
 
-def _breusch_godfrey(E_ref, Y, des: _Designs, du, xreason, x_finite, n, k):
-    """``asymptotic_tests.breusch_godfrey_batch`` with a design per row: LM = n R^2 of e on [X, e_-1]."""
+def _breusch_godfrey(E_ref, data_r, des: _Designs, du, xreason, x_finite, n, k):
+    """``asymptotic_tests.breusch_godfrey_batch`` with a design per row: LM = n R^2 of e on [X, e_-1].
+
+    ``data_r``: ``series_reasons`` of the data and the zero-filled residuals, per row.
+    """
     m = E_ref.shape[0]
     has_c = des.has_constant[du]
     ka = np.where(has_c, k, k + 1) + 1
@@ -1260,14 +1327,14 @@ def _breusch_godfrey(E_ref, Y, des: _Designs, du, xreason, x_finite, n, k):
         Qn = des.Qa_noconst[du[rows[nc]]]
         U_[nc] = Ef[nc] - np.einsum("mnk,mk->mn", Qn, np.einsum("mnk,mn->mk", Qn, Ef[nc]))
         Lr[nc] = lag[nc] - np.einsum("mnk,mk->mn", Qn, np.einsum("mnk,mn->mk", Qn, lag[nc]))
-    lm[rows] = bg_lm_rows(U_, Lr, Ef, series_reasons(Y[rows], E0), finite)[0]
+    lm[rows] = bg_lm_rows(U_, Lr, Ef, data_r[rows], finite)[0]
     return lm, _chi2_sf(lm, 1)
 
 
-def _ljung_box(E_ref, Y, h):
-    """Ljung-Box Q(h) and p-value per row: ``asymptotic_tests.ljung_box_batch`` (already batched)."""
-    lb = ljung_box_batch(E_ref, h, Y)
-    return lb["statistic"].to_numpy(), lb["p_value"].to_numpy()
+def _ljung_box(E_ref, Y, h, data_r):
+    """Ljung-Box Q(h) and p-value per row: the arrays of ``asymptotic_tests.ljung_box_batch``."""
+    q, _ = ljung_box_rows(E_ref, h, Y, data_reasons=data_r)
+    return q, _chi2_sf(q, h)
 
 
 def _empty_columns(out: dict, n: int, k: int, with_supplied: bool) -> dict:

@@ -14,7 +14,9 @@ from audit.asymptotic_tests import (
     ljung_box,
     ljung_box_batch,
     ljung_box_default_lags,
+    ljung_box_rows,
 )
+from audit.regression import series_reasons
 
 
 def piecewise_design(n_a: int, n_b: int) -> np.ndarray:
@@ -110,6 +112,12 @@ def test_batches_agree_with_per_case():
     assert list(lb["reason"]) == [s.reason for s in lbs]
     assert bg.loc[1, "reason"] == R.CONSTANT_SERIES and lb.loc[2, "reason"] == R.NON_FINITE_INPUT
     assert bg["asymptotic"].all() and lb["method"].str.contains("asymptotic=True").all()
+    # the frame-free rows (with or without the data reasons given) are the frame's columns
+    h = ljung_box_default_lags(n)
+    for given in (None, series_reasons(Y, np.where(np.isfinite(E), E, 0.0))):
+        q, reason = ljung_box_rows(E, h, Y, data_reasons=given)
+        np.testing.assert_array_equal(q, lb["statistic"].to_numpy(dtype=float))
+        assert list(reason) == list(lb["reason"])
 
 
 @pytest.mark.parametrize(

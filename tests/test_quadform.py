@@ -93,6 +93,37 @@ def test_imhof_agrees_with_quad_reference_and_pan():
     assert worst_pan < 1e-9
 
 
+def test_initial_t_panels_cover_the_range_in_increasing_order():
+    for span in (-1.0, 0.0, 0.3, 3.0, 4.5, 4.6, 7.5, 40.0):
+        edges = Q._t_panel_edges(span)
+        assert edges[0] == 0.0 and np.all(np.diff(edges) > 0)
+        assert edges[-1] >= span and edges.size >= 2
+        # narrow panels first, then the standard width, then wide ones
+        widths = np.diff(edges)
+        assert np.all(widths[:4] == Q._NARROW_WIDTH) and widths[4] == Q._PANEL_WIDTH
+        assert np.all(widths[5:] == Q._WIDE_WIDTH)
+
+
+def test_durbin_watson_rows_agree_with_quad_reference_within_the_error_bound():
+    # rows of the form mu - d (mu: eigenvalues of N'AN for a level-and-trend design), the rows
+    # the DW p-values and critical values integrate; the error bound stays below its documented size
+    rng = np.random.default_rng(17)
+    for n, k in ((8, 3), (16, 4), (40, 8)):
+        t = np.arange(float(n))
+        step = (t >= n // 2).astype(float)
+        X = np.column_stack([np.ones(n), t, step, (t - n // 2) * step, rng.normal(size=(n, max(k - 4, 0)))])[:, :k]
+        N = np.linalg.qr(X, mode="complete")[0][:, k:]
+        dn = np.diff(N, axis=0)
+        mu = np.linalg.eigvalsh(dn.T @ dn)
+        for d in np.quantile(mu, [0.05, 0.3, 0.5, 0.8, 0.97]) + rng.normal(scale=1e-3, size=5):
+            p, err = prob_quadform_below_zero(mu - d, return_error=True)
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                ref = prob_quadform_below_zero_reference(mu - d)  # source: scipy.integrate.quad
+            assert abs(p - ref) < 1e-9
+            assert err < 4e-10
+
+
 def test_references_agree_with_each_other():
     # Two independent reference routes (Imhof integral vs Pan's finite intervals).
     rng = np.random.default_rng(7)

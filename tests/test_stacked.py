@@ -245,6 +245,32 @@ def test_designs_that_occur_twice_share_their_algebra_but_not_their_data():
     _stack_and_compare(Y, twice, supplied_rho=0.25)
 
 
+def test_grid_values_from_cholesky_and_symmetric_root_agree():
+    # the two factorisations of M(g) in the AR(1) grid search (the second one is the fallback
+    # when M(g) is not numerically positive definite) give the same -2 loglik on the grid
+    from audit.ar1 import _GRID
+    from audit.stacked import _AR1Rows, _grid_cholesky, _grid_values
+
+    series, designs, _ = _random_review(4, 12)
+    for des, y in zip(designs, series):
+        n, k = des.X.shape
+        Q = np.linalg.qr(des.X)[0]
+        A1 = Q[1:].T @ Q[:-1]
+        A1 = (A1 + A1.T)[None]
+        A2 = (Q[1:-1].T @ Q[1:-1])[None]
+        E = (y - Q @ (Q.T @ y))[None]
+        rows = _AR1Rows(E, Q[None], A1, A2, n, k)
+        L, logdet, lower = _grid_cholesky(A1, A2)
+        assert lower
+        M = np.eye(k) - _GRID[None, :, None, None] * A1[:, None] + (_GRID**2)[None, :, None, None] * A2[:, None]
+        w, v = np.linalg.eigh(M)
+        root = v * np.sqrt(w)[..., None, :]
+        a = _grid_values(rows, np.zeros(1, dtype=int), L, logdet, True)
+        b = _grid_values(rows, np.zeros(1, dtype=int), root, np.sum(np.log(w), axis=-1), False)
+        for meth in a:
+            np.testing.assert_allclose(a[meth], b[meth], rtol=1e-10, atol=1e-10)
+
+
 # ----------------------------------------------------------------------------- whole-review entry points
 
 
