@@ -195,12 +195,15 @@ def _run_pipeline(args, paths, store, config: AuditConfig, progress: Progress) -
     if Path(store).exists() and not Path(store).is_dir():
         raise UsageError(f"--store {store} is a file; give a folder for the results store")
     force = bool(getattr(args, "force", False))
+    workers = getattr(args, "workers", None)
+    if workers is not None and workers < 1:
+        raise UsageError(f"--workers must be at least 1, got {workers}")
     try:
         if getattr(args, "no_prefect", False):
             if runner_spec:
                 raise UsageError("--task-runner needs Prefect; leave out --no-prefect")
             return run_audit(paths, store, config, progress=progress, batch_size=batch_size, with_report=with_report,
-                             lock_timeout=lock_timeout, force=force)
+                             lock_timeout=lock_timeout, force=force, workers=workers)
         if not force:  # nothing new: no flow run (and no Prefect server) needed
             from audit.rerun import find_inputs, unchanged_run
 
@@ -222,7 +225,7 @@ def _run_pipeline(args, paths, store, config: AuditConfig, progress: Progress) -
         # the flow loads the config file itself (its parameters stay plain data for deployments)
         return run_review(paths, store, alpha=getattr(args, "alpha", None), config_file=getattr(args, "config", None),
                           batch_size=batch_size, task_runner=runner, progress=progress, with_report=with_report,
-                          lock_timeout=lock_timeout, force=force)
+                          lock_timeout=lock_timeout, force=force, workers=workers)
     except InputError as exc:
         raise UsageError(str(exc)) from None
     except StoreError as exc:
@@ -309,6 +312,8 @@ def cmd_schedule(args) -> int:
     batch_size = args.batch_size or _default_batch_size()
     if batch_size < 1:
         raise UsageError(f"--batch-size must be at least 1, got {batch_size}")
+    if args.workers is not None and args.workers < 1:
+        raise UsageError(f"--workers must be at least 1, got {args.workers}")
     url = _api_url_for_schedule(args)
     from flows.settings import configure
 
@@ -319,6 +324,7 @@ def cmd_schedule(args) -> int:
         deployment = build_deployment(
             args.paths, args.store, args.cron,
             alpha=args.alpha, config_file=args.config, batch_size=batch_size, name=args.name, timezone=args.timezone,
+            workers=args.workers,
         )
     except ValueError as exc:
         raise UsageError(str(exc)) from None
@@ -434,6 +440,9 @@ def _add_analysis_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--batch-size", type=int, metavar="N", help="cases per diagnose task (default 2000; larger batches share more design algebra)")
     p.add_argument("--lock-timeout", type=float, metavar="SECONDS",
                    help="how long to wait for another run writing the same store (default 60)")
+    p.add_argument("--workers", type=int, metavar="N",
+                   help="processes for the diagnose batches (default one per core for inputs of 2 MB "
+                        "or more, else none; 1 = in this process)")
 
 
 def _add_common(p: argparse.ArgumentParser, prefect: bool = True) -> None:
@@ -525,6 +534,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    from audit.memory import prefer_returnable_allocations
+
+    prefer_returnable_allocations()  # large temporary tables go back to the system when freed
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "func", None):

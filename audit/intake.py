@@ -5,6 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from audit.config import AuditConfig
@@ -63,16 +64,39 @@ def combine(reads: list[FileRead], path_problems: list[FileProblem], config: Aud
     Each FileRead's raw rows are released once they are concatenated (``FileRead.release_rows``):
     only the prepared tables stay in memory.
     """
-    frames = [r.rows for r in reads if len(r.rows)]
-    raw = pd.concat(frames, ignore_index=True) if frames else reads[0].rows.iloc[0:0] if reads else pd.DataFrame()
-    del frames
-    problems = [p for r in reads for p in r.problems]
-    if raw.empty and not reads:
+    if not reads:
         raise InputError("nothing to read")
-    for r in reads:  # the rows now live in ``raw``: drop each file's copy (counts are kept)
-        r.release_rows()
-    prepared = prepare_rows(raw, problems, config)
+    raw = _concat_releasing(reads)  # each file's rows are dropped as they are copied (counts are kept)
+    problems = [p for r in reads for p in r.problems]
+    handed = [raw]  # prepare_rows gets the only reference: raw columns are freed as they are cleaned
+    del raw
+    prepared = prepare_rows(handed.pop(), problems, config)
     return ReviewInput(prepared=prepared, files=reads, path_problems=path_problems)
+
+
+def _concat_releasing(reads: list[FileRead]) -> pd.DataFrame:
+    """The rows of all files in one frame, built column by column: each file's copy of a column is
+    dropped once that column is joined, so the peak is one column above the files' rows."""
+    frames = [r.rows for r in reads if len(r.rows)]
+    empty = reads[0].rows.iloc[0:0]
+    columns = list(frames[0].columns) if frames else []
+    same = all(list(f.columns) == columns and (f.dtypes == frames[0].dtypes).all() for f in frames)
+    for r in reads:
+        r.release_rows()
+    if not frames:
+        return empty
+    if not same or any(isinstance(t, pd.CategoricalDtype) or not isinstance(t, np.dtype) for t in frames[0].dtypes):
+        raw = pd.concat(frames, ignore_index=True)
+        del frames
+        return raw
+    n = sum(len(f) for f in frames)
+    data = {}
+    for col in columns:
+        values = np.concatenate([f[col].to_numpy() for f in frames])
+        data[col] = pd.Series(values, dtype=values.dtype, index=pd.RangeIndex(n), copy=False)  # no inference
+        frames = [f.drop(columns=col) for f in frames]
+    del frames
+    return pd.DataFrame(data, copy=False)
 
 
 def load_review(paths: list[str | Path], config: AuditConfig) -> ReviewInput:

@@ -35,6 +35,8 @@ from audit import __version__
 from audit.config import AuditConfig
 from audit.ingest import FileProblem, FileRead, InputError, read_input_file
 from audit.intake import ReviewInput, combine, read_files
+from audit.memory import release_freed_memory
+from audit.parallel import DiagnosePool, input_bytes, workers_for_input
 from audit.store import ResultsStore, content_hashes_of_slices, file_sha256
 
 __all__ = [
@@ -254,21 +256,39 @@ def _canonical(observations: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(out)
 
 
+HASH_CHUNK_ROWS = 250_000  # rows of whole cases hashed at a time (bounds the canonical text copy)
+
+
 def case_hashes(observations: pd.DataFrame, parameters: Mapping[str, Any], code_version: str) -> pd.Series:
     """case_key -> SHA-256 of the case's observation values, the parameters and the code version.
 
     Equals :func:`audit.store.content_hash` of each case's rows (in session order, provenance
-    columns source_file/source_sheet/source_row left out, dtypes fixed), computed for all cases
-    in one pass by :func:`audit.store.content_hashes_of_slices`.
+    columns source_file/source_sheet/source_row left out, dtypes fixed), computed by
+    :func:`audit.store.content_hashes_of_slices` over chunks of whole cases (about
+    ``HASH_CHUNK_ROWS`` rows each), so that the canonical copy of the text stays chunk-sized.
     """
     if observations.empty:
         return pd.Series([], index=pd.Index([], name="case_key", dtype=object), name=HASH_KEY, dtype=object)
-    obs = observations.sort_values(["case_key", "session"], kind="stable").reset_index(drop=True)
-    canon = _canonical(obs)
-    keys = obs["case_key"].to_numpy()
-    bounds = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1], True])
-    digests = content_hashes_of_slices(canon, bounds, dict(parameters), str(code_version))
-    series = pd.Series(digests, index=[str(k) for k in keys[bounds[:-1]]], name=HASH_KEY, dtype=object)
+    codes, uniques = pd.factorize(observations["case_key"], sort=True)
+    session = observations["session"].to_numpy(dtype=float)
+    order = np.lexsort((session, codes))  # as sort_values(["case_key", "session"], kind="stable")
+    sorted_codes = codes[order]
+    bounds = np.flatnonzero(np.r_[True, sorted_codes[1:] != sorted_codes[:-1], True])
+    columns = [c for c in observations.columns if c not in HASH_EXCLUDED_COLUMNS]
+    digests: list[str] = []
+    first = 0  # index into bounds of the chunk's first case
+    while first < len(bounds) - 1:
+        last = int(np.searchsorted(bounds, bounds[first] + HASH_CHUNK_ROWS, side="right")) - 1
+        last = min(max(last, first + 1), len(bounds) - 1)
+        lo, hi = int(bounds[first]), int(bounds[last])
+        chunk = observations[columns].take(order[lo:hi]).reset_index(drop=True)
+        canon = _canonical(chunk)
+        del chunk
+        digests.extend(content_hashes_of_slices(canon, bounds[first:last + 1] - lo, dict(parameters), str(code_version)))
+        del canon
+        first = last
+    keys = [str(k) for k in np.asarray(uniques, dtype=object)[sorted_codes[bounds[:-1]]]]
+    series = pd.Series(digests, index=keys, name=HASH_KEY, dtype=object)
     series.index.name = "case_key"
     return series
 
@@ -442,6 +462,7 @@ def unchanged_run(store_path: str | Path, files: Sequence[str | Path], path_prob
 def combine_reads(reads: list[FileRead], path_problems: list[FileProblem], config: AuditConfig) -> ReviewInput:
     """Prepare the rows of all files together; InputError when no case passed validation."""
     review = combine(reads, path_problems, config)
+    release_freed_memory()  # the raw rows and intake's temporaries
     if review.prepared.rows_accepted == 0:
         prep = review.prepared
         raise InputError(
@@ -457,6 +478,7 @@ def plan_run(review: ReviewInput, store: ResultsStore | None, config: AuditConfi
     version = code_version() if version is None else version
     obs = review.prepared.observations
     hashes = case_hashes(obs, config.as_parameters(), version)
+    release_freed_memory()  # the canonical text of the hashing
     to_compute, reused = split_for_reuse(obs, hashes, store)
     source = None
     if reused:
@@ -472,6 +494,9 @@ def case_batches(observations: pd.DataFrame, batch_size: int = DEFAULT_BATCH_SIZ
         return []
     codes, _ = pd.factorize(observations["case_key"], sort=False)
     batch = codes // int(batch_size)
+    if np.all(batch[1:] >= batch[:-1]):  # each case's rows together (as intake leaves them): slices, no copy
+        cuts = np.flatnonzero(np.r_[True, batch[1:] != batch[:-1], True])
+        return [observations.iloc[a:b].reset_index(drop=True) for a, b in zip(cuts[:-1], cuts[1:])]
     return [part.reset_index(drop=True) for _, part in observations.groupby(batch, sort=True)]
 
 
@@ -496,6 +521,8 @@ def _ordered(df: pd.DataFrame, order: Mapping[str, int]) -> pd.DataFrame:
     if df.empty or "case_key" not in df.columns:
         return df.reset_index(drop=True)
     pos = df["case_key"].map(order).fillna(len(order)).to_numpy(dtype=np.int64)
+    if np.all(pos[1:] >= pos[:-1]):  # already in order (the usual case): no copy
+        return df.reset_index(drop=True)
     return df.iloc[np.argsort(pos, kind="stable")].reset_index(drop=True)
 
 
@@ -539,6 +566,7 @@ def assemble_tables(review: ReviewInput, plan: ReusePlan,
         reused = plan.reused.get(name)
         frames = [f for f in (reused, computed) if f is not None]
         tables[name] = _ordered(_concat(frames), order)
+    release_freed_memory()  # the batch results, now concatenated
     return tables
 
 
@@ -562,6 +590,7 @@ def summary_tables(tables: Mapping[str, pd.DataFrame], alpha: float = 0.05,
         result = summarize(tables["cases"], **kwargs)
     else:
         result = summarize(dict(tables))
+    release_freed_memory()
     if result is None:
         return {}
     if isinstance(result, pd.DataFrame):
@@ -603,6 +632,7 @@ def write_run(store: ResultsStore, review: ReviewInput, plan: ReusePlan, tables:
         for name, df in tables.items():
             run.write_table(name, df)
         run_id = run.commit(counts)
+    release_freed_memory()
     return RunSummary(
         run_id=run_id,
         store=store.path,
@@ -628,6 +658,7 @@ def write_report(store: ResultsStore, summary: RunSummary) -> RunSummary:
     fn = _optional("audit.report", "write_report")
     if fn is None:
         return summary
+    release_freed_memory()  # the run's tables, freed by the caller
     params = inspect.signature(fn).parameters
     path = fn(store.path, run=summary.run_id) if "run" in params else fn(store.path)
     if path is None:
@@ -649,8 +680,9 @@ def run_audit(
     with_summary: bool = True,
     with_report: bool = True,
     force: bool = False,
+    workers: int | None = None,
 ) -> RunSummary:
-    """The whole audit, sequentially and without Prefect: intake, reuse, diagnose, store, summary, report.
+    """The whole audit without Prefect: intake, reuse, diagnose, store, summary, report.
 
     Unless ``force``, nothing is run when the latest run used the same input files, parameters
     and code version (:func:`unchanged_run`); its summary is returned with ``unchanged`` set.
@@ -658,12 +690,24 @@ def run_audit(
     progress: called as progress(stage, done, total) with stage "read" (files) or "diagnose"
     (batches of cases). diagnose: the diagnostics function (default
     ``audit.diagnose.diagnose_cases``), called once per batch. with_summary / with_report:
-    run the summary and report hooks (when those modules exist).
+    run the summary and report hooks (when those modules exist). workers: processes for the
+    diagnose batches (:class:`audit.parallel.DiagnosePool`; default one per core for inputs of
+    a few MB or more, else in-process; a custom ``diagnose`` always runs in-process).
     """
     config = config or AuditConfig()
     files, path_problems = find_inputs(paths)
     if not force and (same := unchanged_run(store_path, files, path_problems, config, with_report=with_report)):
         return same
+    n_workers = 1 if diagnose is not None else workers_for_input(workers, input_bytes(files))
+    with DiagnosePool(n_workers) as pool:
+        pool.start()  # the workers start while the files are read
+        return _run_with_pool(pool, files, path_problems, store_path, config, progress, batch_size, diagnose,
+                              lock_timeout, with_summary, with_report)
+
+
+def _run_with_pool(pool: DiagnosePool, files, path_problems, store_path, config: AuditConfig,
+                   progress: Progress | None, batch_size: int, diagnose: Diagnose | None, lock_timeout: float,
+                   with_summary: bool, with_report: bool) -> RunSummary:
     reads = []
     hashes: dict[str, str] = {}
     for i, path in enumerate(files, start=1):
@@ -679,11 +723,21 @@ def run_audit(
     results = []
     if progress:
         progress("diagnose", 0, len(batches))
-    for i, batch in enumerate(batches, start=1):
-        results.append(diagnose_batch(batch, config.alpha, diagnose))
+    if diagnose is None and pool.uses_processes:  # every batch queued at once: all workers busy
+        pending = [pool.submit(batch, config.alpha) for batch in batches]
+        outcome = (future.result() for future in pending)
+    else:
+        outcome = (diagnose_batch(batch, config.alpha, diagnose) for batch in batches)
+    for i, tables_of_batch in enumerate(outcome, start=1):
+        results.append(tables_of_batch)
         if progress:
             progress("diagnose", i, len(batches))
+    del batches, outcome
+    pool.close()  # the worker processes' memory goes back before the summary
+    if pool.fallback_reason:
+        log.warning(pool.fallback_reason)
     tables = assemble_tables(review, plan, results)
+    results.clear()  # the batch tables now live in ``tables``
     if with_summary:
         tables.update(summary_tables(tables, config.alpha, review.prepared.cases))
     summary = write_run(store, review, plan, tables, config, hashes, lock_timeout)

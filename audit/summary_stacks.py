@@ -59,18 +59,23 @@ class ReviewStacks:
     """A review's observations as flat arrays sorted by case and session, with case positions."""
 
     def __init__(self, observations: pd.DataFrame):
-        obs = observations.sort_values(["case_key", "session"], kind="stable")
-        keys = obs["case_key"].astype(str).to_numpy()
-        self.n_rows = keys.size
-        first = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]]) if keys.size else np.empty(0, dtype=np.int64)
-        self.keys = keys[first]
+        # rows in (case_key, session) order, as sort_values(kind="stable") gives, without copying
+        # the table: an order of positions, then only the columns needed
+        codes, uniques = pd.factorize(observations["case_key"], sort=True)
+        session = observations["session"].to_numpy(dtype=float)
+        order = np.lexsort((session, codes))
+        sorted_codes = codes[order]
+        self.n_rows = order.size
+        first = (np.flatnonzero(np.r_[True, sorted_codes[1:] != sorted_codes[:-1]]) if order.size
+                 else np.empty(0, dtype=np.int64))
+        self.keys = np.asarray(uniques, dtype=object)[sorted_codes[first]].astype(str).astype(object)
         self.starts = first.astype(np.int64)
-        self.session = obs["session"].to_numpy(dtype=float)
-        self.outcome = obs["outcome"].to_numpy(dtype=float)
-        self.phase_index = obs["phase_index"].to_numpy()
-        self.condition = obs["condition"].astype(str).to_numpy()
-        self.design = obs["design"].astype(str).to_numpy()
-        self.phase_label = obs["phase"].astype(str).to_numpy()
+        self.session = session[order]
+        self.outcome = observations["outcome"].to_numpy(dtype=float)[order]
+        self.phase_index = observations["phase_index"].to_numpy()[order]
+        self.condition = _text_in_order(observations["condition"], order)
+        self.design = _text_in_order(observations["design"], order)
+        self.phase_label = _text_in_order(observations["phase"], order)
         self._position = pd.Index(self.keys)
 
     def __len__(self) -> int:
@@ -94,6 +99,14 @@ class ReviewStacks:
                 for s0 in range(0, idx.size, STACK_ROWS):
                     sl = slice(s0, s0 + STACK_ROWS)
                     yield _Stack(idx[sl] + b0, self.outcome[rows[sl]], X[sl], C[sl], n_trans[sl])
+
+
+def _text_in_order(values: pd.Series, order: np.ndarray) -> np.ndarray:
+    """``values.astype(str).to_numpy()[order]``, with one string object per distinct value."""
+    codes, uniques = pd.factorize(values)
+    if (codes < 0).any():  # missing values print as text there
+        return values.astype(str).to_numpy()[order]
+    return np.asarray(uniques, dtype=object).astype(str).astype(object)[codes[order]]
 
 
 def ar1_from_r1(stacks: ReviewStacks, r1: np.ndarray) -> tuple[AR1FromResidualLag1, np.ndarray]:

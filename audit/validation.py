@@ -206,8 +206,12 @@ def _row_rule(check: str, column: str) -> tuple[str, str]:
 
 
 def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: AuditConfig) -> PreparedInput:
-    """Validate and repair raw rows of the whole review; cases may span files."""
-    frame = raw.reset_index(drop=True).copy()
+    """Validate and repair raw rows of the whole review; cases may span files.
+
+    ``raw`` is not changed (copy-on-write). A caller that hands over its only reference (see
+    ``audit.intake.combine``) lets each raw column go as soon as its cleaned version exists."""
+    frame = raw.reset_index(drop=True)
+    del raw
     n = len(frame)
     frame["_pos"] = np.arange(n)
     raw_session = frame["session"].copy()
@@ -228,30 +232,34 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
 
     # ---- row rules (pandera, lazy: every failure at once)
     bad_rows: dict[int, tuple[str, str, str, str]] = {}
-    check = frame[["study", "case", "series", "session", "outcome", "phase", "condition",
-                   "outcome_scale", "desired_direction", "extra_fields", "source_file", "source_row"]].copy()
-    for col in ("study", "case", "series", "phase", "condition", "outcome_scale", "desired_direction", "extra_fields"):
-        check[col] = check[col].astype("str").where(check[col].notna(), None) if len(check) else check[col].astype("str")
-    check["source_file"] = check["source_file"].astype("str")
-    check["source_row"] = check["source_row"].astype("int64")
-    try:
-        RawRows.validate(check, lazy=True)
-    except pa.errors.SchemaErrors as exc:
-        fc = exc.failure_cases
-        fc = fc[fc["index"].notna()]
-        for pos, column, chk in zip(fc["index"].astype(int), fc["column"].astype(str), fc["check"].astype(str)):
-            if pos in bad_rows:
-                continue
-            rule, text = _row_rule(chk, column)
-            source = {"session": raw_session, "outcome": raw_outcome}.get(column)
-            if source is not None:
-                value = source.iloc[pos]
-            elif column == "extra_fields":
-                value = frame["extra_fields"].iloc[pos]
-            else:
-                value = frame[column].iloc[pos] if column in frame else None
-            value_text = None if value is None or (isinstance(value, float) and np.isnan(value)) else str(value)
-            bad_rows[pos] = (rule, text, column, value_text)
+    check_columns = ["study", "case", "series", "session", "outcome", "phase", "condition",
+                     "outcome_scale", "desired_direction", "extra_fields", "source_file", "source_row"]
+    for lo in range(0, max(n, 1), _VALIDATE_CHUNK_ROWS):  # slices: pandera's copies stay slice-sized
+        check = frame.iloc[lo:lo + _VALIDATE_CHUNK_ROWS][check_columns].copy()
+        for col in ("study", "case", "series", "phase", "condition", "outcome_scale", "desired_direction",
+                    "extra_fields"):
+            check[col] = (check[col].astype("str").where(check[col].notna(), None) if len(check)
+                          else check[col].astype("str"))
+        check["source_file"] = check["source_file"].astype("str")
+        check["source_row"] = check["source_row"].astype("int64")
+        try:
+            RawRows.validate(check, lazy=True)
+        except pa.errors.SchemaErrors as exc:
+            fc = exc.failure_cases
+            fc = fc[fc["index"].notna()]
+            for pos, column, chk in zip(fc["index"].astype(int), fc["column"].astype(str), fc["check"].astype(str)):
+                if pos in bad_rows:
+                    continue
+                rule, text = _row_rule(chk, column)
+                source = {"session": raw_session, "outcome": raw_outcome}.get(column)
+                if source is not None:
+                    value = source.iloc[pos]
+                elif column == "extra_fields":
+                    value = frame["extra_fields"].iloc[pos]
+                else:
+                    value = frame[column].iloc[pos] if column in frame else None
+                value_text = None if value is None or (isinstance(value, float) and np.isnan(value)) else str(value)
+                bad_rows[pos] = (rule, text, column, value_text)
     del check, raw_session, raw_outcome  # (memory: a million-row input holds several copies otherwise)
 
     bad_mask = np.zeros(n, dtype=bool)
@@ -408,7 +416,7 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
 
     # ---- design names
     given = good["design"].notna()
-    good.loc[given, "design"] = good.loc[given, "design"].map(normalise_design)
+    good.loc[given, "design"] = _map_unique(good.loc[given, "design"], normalise_design)
     good["design_source"] = np.where(given, "given", "inferred")
     if (~given).any():
         phase_conditions = (

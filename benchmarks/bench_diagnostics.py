@@ -46,6 +46,20 @@ def _series_part(part: dict):
     return diagnose_series(**part)
 
 
+def _cases_part(obs: pd.DataFrame) -> dict:
+    """diagnose_cases on one block of whole cases (run in a worker process); its tables come back."""
+    from audit.diagnose import diagnose_cases
+
+    return diagnose_cases(obs)
+
+
+def _case_blocks(obs: pd.DataFrame, parts: int) -> list[pd.DataFrame]:
+    """The observations cut into ``parts`` blocks of whole cases (by case key)."""
+    codes, _ = pd.factorize(obs["case_key"], sort=True)
+    cut = codes * parts // max(int(codes.max()) + 1, 1)
+    return [obs[cut == i] for i in range(parts)]
+
+
 def _blocks(arrays: dict, parts: int) -> list[dict]:
     """The flat arrays cut into ``parts`` contiguous blocks of cases."""
     starts = arrays["case_starts"]
@@ -65,9 +79,14 @@ def run_engine(obs, engine: str, pool=None, workers: int = 1) -> tuple[int, floa
     if engine == "diagnose_cases":
         from audit.diagnose import diagnose_cases
 
-        with Timer() as t:
-            tables = diagnose_cases(obs)
-        return len(tables["cases"]), t.seconds, {}
+        if pool is None or workers < 2:
+            with Timer() as t:
+                tables = diagnose_cases(obs)
+            return len(tables["cases"]), t.seconds, {}
+        with Timer() as t:  # splitting, sending the blocks and getting the tables back are timed
+            futures = [pool.submit(_cases_part, block) for block in _case_blocks(obs, workers)]
+            n = sum(len(f.result()["cases"]) for f in futures)
+        return n, t.seconds, {}
     if engine == "designs":
         from audit.stacked import diagnose_designs
 
@@ -98,8 +117,8 @@ def main(argv=None) -> None:
                     help="cases for the baseline loop (first N of the same input; 0 = all)")
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--workers", type=int, default=1,
-                    help="engine 'series' only: split the cases over this many worker processes "
-                         "(started before timing; the baseline loop stays one process)")
+                    help="engines 'series' and 'diagnose_cases': split the cases over this many worker "
+                         "processes (started before timing; the baseline loop stays one process)")
     ap.add_argument("--engine", choices=("series", "designs", "diagnose_cases"), default="series",
                     help="series: audit.stacked.diagnose_series on the sorted observation arrays (designs "
                          "built for all cases at once); designs: case_design per case, then "
@@ -116,7 +135,7 @@ def main(argv=None) -> None:
           f"not timed); baseline on {n_base} of them")
 
     pool = None
-    if args.workers > 1 and args.engine == "series":
+    if args.workers > 1 and args.engine in ("series", "diagnose_cases"):
         pool = ProcessPoolExecutor(args.workers, mp_context=multiprocessing.get_context("fork"))
     # warm-up (imports, caches such as the DW bounds, worker start), not timed
     run_engine(take_cases(obs, 50), args.engine, pool, args.workers)

@@ -28,7 +28,7 @@ from flows import settings as _settings
 if "prefect" not in sys.modules and not _settings._OURS:
     _settings.configure()  # our defaults (own home, nothing sent out, quiet) before prefect loads
 
-from prefect import flow, task  # noqa: E402
+from prefect import flow, get_run_logger, task  # noqa: E402
 from prefect.cache_policies import NONE  # noqa: E402
 from prefect.task_runners import ThreadPoolTaskRunner  # noqa: E402
 from prefect.futures import as_completed  # noqa: E402
@@ -37,6 +37,8 @@ from audit import rerun  # noqa: E402
 from audit.config import AuditConfig, load_config  # noqa: E402
 from audit.ingest import FileProblem, FileRead  # noqa: E402
 from audit.intake import ReviewInput  # noqa: E402
+from audit.parallel import default_workers, input_bytes, workers_for_input  # noqa: E402
+from flows import workers as _workers  # noqa: E402
 from audit.store import StoreError  # noqa: E402
 
 __all__ = [
@@ -113,15 +115,18 @@ def plan_reuse(review: ReviewInput, store: str, config: AuditConfig) -> rerun.Re
 
 @task(name="diagnose-batch", task_run_name="diagnose batch {batch_number}", **_common)
 def diagnose_batch(observations: Any, alpha: float, batch_number: int) -> dict[str, Any]:
-    """Diagnostics tables of one batch of cases."""
-    return rerun.diagnose_batch(observations, alpha)
+    """Diagnostics tables of one batch of cases (in the flow's worker processes when it has them)."""
+    return _workers.diagnose(observations, alpha)
 
 
 @task(name="summarize", **_common)
 def summarize(review: ReviewInput, plan: rerun.ReusePlan, results: list[dict[str, Any]],
               alpha: float, with_summary: bool = True) -> dict[str, Any]:
-    """Every table of the run, with the review summary when audit.summary exists."""
+    """Every table of the run, with the review summary when audit.summary exists.
+
+    ``results`` is emptied once its tables are assembled (their memory is not held twice)."""
     tables = rerun.assemble_tables(review, plan, results)
+    results.clear()
     if with_summary:
         tables.update(rerun.summary_tables(tables, alpha, review.prepared.cases))
     return tables
@@ -145,11 +150,11 @@ def _report_progress(stage: str, done: int, total: int) -> None:
         _progress(stage, done, total)
 
 
-# Default runner: one worker thread, so diagnose batches run one after another.  The engine's
-# batch work is many small array operations that hold the GIL; several threads at once were
-# measured slower than one (2-core machine, 20,000 cases: 32 s with Prefect's default of
-# cpu_count + 4 threads against 14 s in one).  Parallel work: --task-runner dask (processes).
-DEFAULT_TASK_RUNNER = ThreadPoolTaskRunner(max_workers=1)
+# Default runner: one thread per core.  A diagnose-batch task hands its batch to the flow's
+# DiagnosePool (worker processes, one per core) and waits, so the threads only wait; the batch
+# work itself holds the GIL and in-process batches run one at a time (the pool's lock: several
+# at once were measured slower than one).  Other machines: --task-runner dask.
+DEFAULT_TASK_RUNNER = ThreadPoolTaskRunner(max_workers=default_workers())
 
 
 @flow(name=FLOW_NAME, persist_result=False, log_prints=False, task_runner=DEFAULT_TASK_RUNNER)
@@ -163,6 +168,7 @@ def audit_review(
     with_report: bool = True,
     lock_timeout: float = 60.0,
     force: bool = False,
+    workers: int | None = None,
 ) -> rerun.RunSummary:
     """Audit every case under ``inputs`` into the results store ``store`` (reusing unchanged cases).
 
@@ -172,7 +178,9 @@ def audit_review(
 
     alpha overrides the config file's [analysis] alpha; config_file is a TOML file with column
     and phase-label maps (see audit.config); with_summary / with_report run the review summary
-    and the HTML report (when those modules exist).
+    and the HTML report (when those modules exist). workers: processes for the diagnose
+    batches (default one per core for inputs of a few MB or more, else none); with a Dask task
+    runner the batches run on the Dask workers instead.
     """
     config = load_config(config_file).with_alpha(alpha)
     if batch_size < 1:
@@ -182,6 +190,23 @@ def audit_review(
         same = check_unchanged(store, files, path_problems, config, with_report)
         if same is not None:
             return same
+    n_workers = workers_for_input(workers, input_bytes(files))
+    if not isinstance(_current_task_runner(), ThreadPoolTaskRunner):
+        n_workers = 1  # e.g. Dask: its workers are the processes
+    with _workers.pool_for_run(n_workers):
+        return _audit_files(files, path_problems, store, config, batch_size, with_summary, with_report,
+                            lock_timeout)
+
+
+def _current_task_runner() -> Any:
+    from prefect.context import FlowRunContext
+
+    ctx = FlowRunContext.get()
+    return None if ctx is None else ctx.task_runner
+
+
+def _audit_files(files: list[Path], path_problems: list[FileProblem], store: str, config: AuditConfig,
+                 batch_size: int, with_summary: bool, with_report: bool, lock_timeout: float) -> rerun.RunSummary:
     reads: list[FileRead] = []
     hashes: dict[str, str] = {}
     for i, path in enumerate(files, start=1):
@@ -198,6 +223,9 @@ def audit_review(
         _report_progress("diagnose", done, len(batches))
     results = [f.result() for f in futures]
     del futures
+    _workers.close()  # the worker processes' memory goes back before the summary
+    if _workers.fallback_reason():
+        get_run_logger().warning(_workers.fallback_reason())
     tables = summarize(review, plan, results, config.alpha, with_summary)
     del results
     summary = write_store(store, review, plan, tables, config, hashes, lock_timeout)
@@ -279,6 +307,7 @@ def run_review(
     with_report: bool = True,
     lock_timeout: float = 60.0,
     force: bool = False,
+    workers: int | None = None,
 ) -> rerun.RunSummary:
     """Run :func:`audit_review` in this process (embedded server unless PREFECT_API_URL is set).
 
@@ -303,6 +332,7 @@ def run_review(
                 with_report=with_report,
                 lock_timeout=float(lock_timeout),
                 force=bool(force),
+                workers=None if workers is None else int(workers),
             )
     finally:
         _progress = previous
@@ -329,6 +359,7 @@ def build_deployment(
     batch_size: int = rerun.DEFAULT_BATCH_SIZE,
     name: str | None = None,
     timezone: str | None = None,
+    workers: int | None = None,
 ) -> Any:
     """A deployment of :func:`audit_review` with a cron schedule (paths made absolute).
 
@@ -348,6 +379,7 @@ def build_deployment(
         "alpha": alpha,
         "config_file": None if config_file is None else str(Path(config_file).expanduser().resolve()),
         "batch_size": int(batch_size),
+        "workers": None if workers is None else int(workers),
     }
     return audit_review.to_deployment(
         name=name or deployment_name(store),

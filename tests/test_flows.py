@@ -125,6 +125,19 @@ def test_flow_rerun_reuses_every_case(flow_run, monkeypatch):
             pd.testing.assert_frame_equal(a[name], b[name], obj=name)
 
 
+def test_worker_processes_give_the_same_store(flow_run, tmp_path):
+    store, first, _, _ = flow_run
+    out = review_flow.run_review([FIXTURE / "data"], tmp_path / "procs", batch_size=4, with_report=False, workers=2)
+    assert out.cases_computed == first.cases_computed
+    a, b = _tables(store, first.run_id), _tables(tmp_path / "procs", out.run_id)
+    assert set(a) == set(b)
+    for name in a:
+        pd.testing.assert_frame_equal(a[name], b[name], obj=name)
+    from flows import workers
+
+    assert workers._pool is None  # the run's pool is gone with the run
+
+
 def test_dask_runner_gives_the_same_results(flow_run, tmp_path, monkeypatch):
     pytest.importorskip("prefect_dask")
     from prefect_dask import DaskTaskRunner
