@@ -182,7 +182,9 @@ def test_schedule_definition(tmp_path):
     assert dep.entrypoint == "flows.review.audit_review"
     assert dep.name == review_flow.deployment_name(tmp_path / "store")
     assert dep.parameters == {"inputs": [str((FIXTURE / "data").resolve())], "store": str((tmp_path / "store").resolve()),
-                              "alpha": 0.01, "config_file": None, "batch_size": 7}
+                              "alpha": 0.01, "config_file": None, "batch_size": 7, "workers": None}
+    two = review_flow.build_deployment([FIXTURE / "data"], tmp_path / "store", "0 3 * * 1", workers=2)
+    assert two.parameters["workers"] == 2
     # source: crontab(5) semantics via the cronsim library: minute 0, hour 3, day-of-week 1 = Mondays 03:00
     start = dt.datetime(2026, 1, 1)
     nxt = [d for _, d in zip(range(3), CronSim(sched.schedule.cron, start))]
