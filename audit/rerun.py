@@ -23,7 +23,8 @@ import importlib
 import inspect
 import json
 import logging
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections import deque
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -43,6 +44,7 @@ __all__ = [
     "DEFAULT_BATCH_SIZE",
     "ReusePlan",
     "RunSummary",
+    "case_batch_rows",
     "case_batches",
     "case_hashes",
     "code_version",
@@ -486,18 +488,52 @@ def plan_run(review: ReviewInput, store: ResultsStore | None, config: AuditConfi
     return ReusePlan(code_version=version, hashes=hashes, to_compute=to_compute, reused=reused, source_run=source)
 
 
-def case_batches(observations: pd.DataFrame, batch_size: int = DEFAULT_BATCH_SIZE) -> list[pd.DataFrame]:
-    """Split observations into batches of at most ``batch_size`` whole cases (first-seen order)."""
+def case_batch_rows(observations: pd.DataFrame, batch_size: int = DEFAULT_BATCH_SIZE) -> list[np.ndarray]:
+    """Row positions of batches of at most ``batch_size`` whole cases, cases ordered by their
+    number of points (then first seen).
+
+    Cases of one length share their design algebra (stacks of equal n and k in the engine), so
+    batches of similar lengths repeat less of it: on 20,000 invented cases, ten batches cut this
+    way cost about half as much as ten cut in input order. Rows keep their order within a case.
+    """
     if batch_size < 1:
         raise ValueError(f"batch_size must be at least 1, got {batch_size}")
     if observations.empty:
         return []
     codes, _ = pd.factorize(observations["case_key"], sort=False)
-    batch = codes // int(batch_size)
-    if np.all(batch[1:] >= batch[:-1]):  # each case's rows together (as intake leaves them): slices, no copy
-        cuts = np.flatnonzero(np.r_[True, batch[1:] != batch[:-1], True])
-        return [observations.iloc[a:b].reset_index(drop=True) for a, b in zip(cuts[:-1], cuts[1:])]
-    return [part.reset_index(drop=True) for _, part in observations.groupby(batch, sort=True)]
+    sizes = np.bincount(codes)
+    by_size = np.lexsort((np.arange(sizes.size), sizes))
+    batch_of_case = np.empty(sizes.size, dtype=np.int64)
+    batch_of_case[by_size] = np.arange(sizes.size) // int(batch_size)
+    batch = batch_of_case[codes]
+    order = np.argsort(batch, kind="stable")
+    cuts = np.flatnonzero(np.r_[True, batch[order][1:] != batch[order][:-1], True])
+    return [order[a:b] for a, b in zip(cuts[:-1], cuts[1:])]
+
+
+def take_rows(observations: pd.DataFrame, rows: np.ndarray) -> pd.DataFrame:
+    """The batch's rows as their own frame (a slice, without copying, when they are contiguous)."""
+    if rows.size and rows[-1] - rows[0] == rows.size - 1 and np.all(np.diff(rows) == 1):
+        return observations.iloc[int(rows[0]):int(rows[-1]) + 1].reset_index(drop=True)
+    return observations.take(rows).reset_index(drop=True)
+
+
+def case_batches(observations: pd.DataFrame, batch_size: int = DEFAULT_BATCH_SIZE) -> list[pd.DataFrame]:
+    """Batches of at most ``batch_size`` whole cases (see :func:`case_batch_rows`), all at once."""
+    return [take_rows(observations, rows) for rows in case_batch_rows(observations, batch_size)]
+
+
+def bounded_results(submit: Callable[[pd.DataFrame, int], Any], observations: pd.DataFrame,
+                    batch_rows: Sequence[np.ndarray], in_flight: int) -> Iterator[Any]:
+    """``submit(batch, number)`` for each batch, at most ``in_flight`` at a time; yields each
+    submission's ``.result()`` in batch order. A batch's frame exists only while it is in flight."""
+    pending: deque = deque()
+    for number, rows in enumerate(batch_rows, start=1):
+        pending.append(submit(take_rows(observations, rows), number))
+        if len(pending) >= max(1, in_flight):
+            yield pending.popleft().result()
+    while pending:
+        yield pending.popleft().result()
 
 
 def _resolve_diagnose(diagnose: Diagnose | None) -> Diagnose:
@@ -719,20 +755,20 @@ def _run_with_pool(pool: DiagnosePool, files, path_problems, store_path, config:
     review = combine_reads(reads, path_problems, config)
     store = open_store(store_path)
     plan = plan_run(review, store, config)
-    batches = case_batches(plan.to_compute, batch_size)
+    batch_rows = case_batch_rows(plan.to_compute, batch_size)
     results = []
     if progress:
-        progress("diagnose", 0, len(batches))
-    if diagnose is None and pool.uses_processes:  # every batch queued at once: all workers busy
-        pending = [pool.submit(batch, config.alpha) for batch in batches]
-        outcome = (future.result() for future in pending)
+        progress("diagnose", 0, len(batch_rows))
+    if diagnose is None and pool.uses_processes:  # two batches per worker in flight: none waits
+        outcome = bounded_results(lambda batch, _: pool.submit(batch, config.alpha), plan.to_compute,
+                                  batch_rows, 2 * pool.workers)
     else:
-        outcome = (diagnose_batch(batch, config.alpha, diagnose) for batch in batches)
+        outcome = (diagnose_batch(take_rows(plan.to_compute, rows), config.alpha, diagnose) for rows in batch_rows)
     for i, tables_of_batch in enumerate(outcome, start=1):
         results.append(tables_of_batch)
         if progress:
-            progress("diagnose", i, len(batches))
-    del batches, outcome
+            progress("diagnose", i, len(batch_rows))
+    del batch_rows, outcome
     pool.close()  # the worker processes' memory goes back before the summary
     if pool.fallback_reason:
         log.warning(pool.fallback_reason)

@@ -54,10 +54,12 @@ def _cases_part(obs: pd.DataFrame) -> dict:
 
 
 def _case_blocks(obs: pd.DataFrame, parts: int) -> list[pd.DataFrame]:
-    """The observations cut into ``parts`` blocks of whole cases (by case key)."""
-    codes, _ = pd.factorize(obs["case_key"], sort=True)
-    cut = codes * parts // max(int(codes.max()) + 1, 1)
-    return [obs[cut == i] for i in range(parts)]
+    """The observations cut into ``parts`` blocks of whole cases, as a run cuts its batches
+    (``audit.rerun.case_batch_rows``: cases ordered by their number of points)."""
+    from audit.rerun import case_batch_rows, take_rows
+
+    n_cases = obs["case_key"].nunique()
+    return [take_rows(obs, rows) for rows in case_batch_rows(obs, -(-n_cases // parts))]
 
 
 def _blocks(arrays: dict, parts: int) -> list[dict]:

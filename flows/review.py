@@ -31,7 +31,6 @@ if "prefect" not in sys.modules and not _settings._OURS:
 from prefect import flow, get_run_logger, task  # noqa: E402
 from prefect.cache_policies import NONE  # noqa: E402
 from prefect.task_runners import ThreadPoolTaskRunner  # noqa: E402
-from prefect.futures import as_completed  # noqa: E402
 
 from audit import rerun  # noqa: E402
 from audit.config import AuditConfig, load_config  # noqa: E402
@@ -216,13 +215,16 @@ def _audit_files(files: list[Path], path_problems: list[FileProblem], store: str
         _report_progress("read", i, len(files))
     review = combine_files(reads, path_problems, config)
     plan = plan_reuse(review, store, config)
-    batches = rerun.case_batches(plan.to_compute, batch_size)
-    _report_progress("diagnose", 0, len(batches))
-    futures = [diagnose_batch.submit(batch, config.alpha, i) for i, batch in enumerate(batches, start=1)]
-    for done, _ in enumerate(as_completed(futures), start=1):
-        _report_progress("diagnose", done, len(batches))
-    results = [f.result() for f in futures]
-    del futures
+    batch_rows = rerun.case_batch_rows(plan.to_compute, batch_size)
+    _report_progress("diagnose", 0, len(batch_rows))
+    results = []
+    # at most two batches per thread of the runner in flight: the rest are not yet cut out
+    in_flight = 2 * max(1, getattr(_current_task_runner(), "_max_workers", None) or default_workers())
+    for done, tables_of_batch in enumerate(rerun.bounded_results(
+            lambda batch, number: diagnose_batch.submit(batch, config.alpha, number),
+            plan.to_compute, batch_rows, in_flight), start=1):
+        results.append(tables_of_batch)
+        _report_progress("diagnose", done, len(batch_rows))
     _workers.close()  # the worker processes' memory goes back before the summary
     if _workers.fallback_reason():
         get_run_logger().warning(_workers.fallback_reason())

@@ -153,6 +153,45 @@ def test_batched_run_equals_one_batch_run(tmp_path):
     assert one.cases_computed == many.cases_computed
 
 
+def test_case_batches_group_cases_of_similar_length(review):
+    obs = review.prepared.observations
+    rows = rerun.case_batch_rows(obs, 3)
+    sizes = obs.groupby("case_key", sort=False).size()
+    longest_before = 0
+    for batch_rows in rows:
+        part = obs.iloc[batch_rows]
+        lengths = sizes[part["case_key"].unique()]
+        assert lengths.min() >= longest_before  # batches follow the number of points
+        longest_before = lengths.max()
+        for _, case in part.groupby("case_key", sort=False):  # rows keep their order within a case
+            assert case.index.is_monotonic_increasing
+    assert sorted(np.concatenate(rows).tolist()) == list(range(len(obs)))
+
+
+def test_bounded_results_keeps_few_batches_in_flight(review):
+    obs = review.prepared.observations
+    rows = rerun.case_batch_rows(obs, 2)
+    live, peak = [], []
+
+    class Done:
+        def __init__(self, value):
+            self.value = value
+
+        def result(self):
+            live.pop()
+            return self.value
+
+    def submit(batch, number):
+        live.append(number)
+        peak.append(len(live))
+        return Done((number, len(batch)))
+
+    out = list(rerun.bounded_results(submit, obs, rows, 3))
+    assert [n for n, _ in out] == list(range(1, len(rows) + 1))
+    assert sum(k for _, k in out) == len(obs)
+    assert max(peak) == 3
+
+
 # ----------------------------------------------------------------------------------- runs
 
 
