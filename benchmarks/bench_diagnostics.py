@@ -54,12 +54,15 @@ def _cases_part(obs: pd.DataFrame) -> dict:
 
 
 def _case_blocks(obs: pd.DataFrame, parts: int) -> list[pd.DataFrame]:
-    """The observations cut into ``parts`` blocks of whole cases, as a run cuts its batches
-    (``audit.rerun.case_batch_rows``: cases ordered by their number of points)."""
+    """The observations cut into ``parts`` blocks of whole cases of about equal numbers of rows,
+    cases ordered by their number of points as a run orders them (``audit.rerun.case_batch_rows``)."""
     from audit.rerun import case_batch_rows, take_rows
 
-    n_cases = obs["case_key"].nunique()
-    return [take_rows(obs, rows) for rows in case_batch_rows(obs, -(-n_cases // parts))]
+    (rows,) = case_batch_rows(obs, obs["case_key"].nunique())  # one batch: every row, by case length
+    keys = obs["case_key"].to_numpy()[rows]
+    starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]])  # first row of each case
+    cuts = [0] + [int(starts[np.searchsorted(starts, rows.size * i / parts)]) for i in range(1, parts)] + [rows.size]
+    return [take_rows(obs, rows[a:b]) for a, b in zip(cuts[:-1], cuts[1:]) if b > a]
 
 
 def _blocks(arrays: dict, parts: int) -> list[dict]:
