@@ -41,8 +41,30 @@ def _launch() -> None:
     _process = subprocess.Popen(
         [sys.executable, "-m", "uvicorn", "--app-dir", app_dir, "--factory", "prefect.server.api.server:create_app",
          "--host", HOST, "--port", str(_port), "--log-level", "error", "--lifespan", "on"],
-        env=env, stdin=subprocess.DEVNULL,
+        env=env, stdin=subprocess.DEVNULL, preexec_fn=_stop_with_parent(),
     )
+
+
+def _stop_with_parent():
+    """On Linux, the server gets SIGTERM when this process dies, even when it is killed (exit
+    handlers do not run then): no server is left behind. Elsewhere: None (exit handlers only)."""
+    if not sys.platform.startswith("linux"):
+        return None
+    import ctypes
+    import ctypes.util
+    import signal
+
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6", use_errno=True)
+        prctl = libc.prctl
+    except (OSError, AttributeError):
+        return None
+    pr_set_pdeathsig = 1
+
+    def child_setup() -> None:
+        prctl(pr_set_pdeathsig, int(signal.SIGTERM))
+
+    return child_setup
 
 
 def begin() -> None:
