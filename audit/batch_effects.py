@@ -510,26 +510,17 @@ def dense_rank(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return uniq, rank[v - lo]
 
 
-def increasing_within(g: np.ndarray, x: np.ndarray) -> bool:
-    """g non-decreasing and x strictly increasing within each run of equal g."""
+def increasing_within(g: np.ndarray, x: np.ndarray, strict: bool = True) -> bool:
+    """g non-decreasing and x increasing within each run of equal g (strictly unless ``strict`` is
+    False: then (g, x) is in lexicographic order and a stable sort would keep the order)."""
     if len(g) < 2:
         return True
     dg = g[1:] - g[:-1]
     if (dg < 0).any():
         return False
     same = dg == 0
-    return bool((x[1:][same] > x[:-1][same]).all())
-
-
-def _sorted_pairs(a: np.ndarray, b: np.ndarray) -> bool:
-    """(a, b) non-decreasing in lexicographic order (integers): a stable sort would keep the order."""
-    if len(a) < 2:
-        return True
-    da = a[1:] - a[:-1]
-    if (da < 0).any():
-        return False
-    same = da == 0
-    return bool((b[1:][same] >= b[:-1][same]).all())
+    later, earlier = x[1:][same], x[:-1][same]
+    return bool((later > earlier).all() if strict else (later >= earlier).all())
 
 
 def _is_alternating(design: np.ndarray) -> np.ndarray:
@@ -594,7 +585,7 @@ def case_effects_batch(obs: pd.DataFrame | ObservationColumns, rho: np.ndarray, 
     ph_uniq, ph_rank = dense_rank(ph)
     alt_row = alt[cs] if nrow else np.zeros(0, dtype=bool)
     gcode = np.where(alt_row, cc, ph_rank)
-    if _sorted_pairs(cs, gcode):
+    if increasing_within(cs, gcode, strict=False):
         seg_order = np.arange(nrow)
     else:  # stable sort by (case, group): one integer key
         seg_order = np.argsort(cs.astype(np.int64) * (int(gcode.max()) + 1) + gcode, kind="stable")
