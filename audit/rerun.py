@@ -36,6 +36,7 @@ from audit import __version__
 from audit.config import AuditConfig
 from audit.ingest import FileProblem, FileRead, InputError, read_input_file
 from audit.intake import ReviewInput, combine, read_files
+from audit.validation import CaseOrder
 from audit.memory import release_freed_memory
 from audit.parallel import DiagnosePool, input_bytes, workers_for_input
 from audit.store import ResultsStore, content_hashes_of_slices, file_sha256
@@ -271,11 +272,8 @@ def case_hashes(observations: pd.DataFrame, parameters: Mapping[str, Any], code_
     """
     if observations.empty:
         return pd.Series([], index=pd.Index([], name="case_key", dtype=object), name=HASH_KEY, dtype=object)
-    codes, uniques = pd.factorize(observations["case_key"], sort=True)
-    session = observations["session"].to_numpy(dtype=float)
-    order = np.lexsort((session, codes))  # as sort_values(["case_key", "session"], kind="stable")
-    sorted_codes = codes[order]
-    bounds = np.flatnonzero(np.r_[True, sorted_codes[1:] != sorted_codes[:-1], True])
+    case_order = CaseOrder.of(observations)
+    order, bounds = case_order.rows, case_order.starts
     columns = [c for c in observations.columns if c not in HASH_EXCLUDED_COLUMNS]
     digests: list[str] = []
     first = 0  # index into bounds of the chunk's first case
@@ -289,7 +287,7 @@ def case_hashes(observations: pd.DataFrame, parameters: Mapping[str, Any], code_
         digests.extend(content_hashes_of_slices(canon, bounds[first:last + 1] - lo, dict(parameters), str(code_version)))
         del canon
         first = last
-    keys = [str(k) for k in np.asarray(uniques, dtype=object)[sorted_codes[bounds[:-1]]]]
+    keys = [str(k) for k in case_order.keys]
     series = pd.Series(digests, index=keys, name=HASH_KEY, dtype=object)
     series.index.name = "case_key"
     return series

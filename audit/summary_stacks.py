@@ -27,6 +27,7 @@ from audit import reasons as R
 from audit.autocorrelation import lag_matrix
 from audit.quadform import prob_quadform_below_zero
 from audit.r1_calibration import EXACT, RHO_BOUND, AR1FromResidualLag1, ar1_from_residual_lag1_rows
+from audit.validation import CaseOrder
 from audit.stacked import (
     CASE_BLOCK,
     STACK_ROWS,
@@ -64,18 +65,12 @@ class ReviewStacks:
     """A review's observations as flat arrays sorted by case and session, with case positions."""
 
     def __init__(self, observations: pd.DataFrame):
-        # rows in (case_key, session) order, as sort_values(kind="stable") gives, without copying
-        # the table: an order of positions, then only the columns needed
-        codes, uniques = pd.factorize(observations["case_key"], sort=True)
-        session = observations["session"].to_numpy(dtype=float)
-        order = np.lexsort((session, codes))
-        sorted_codes = codes[order]
+        case_order = CaseOrder.of(observations)  # (case_key, session) order, without copying the table
+        order = case_order.rows
         self.n_rows = order.size
-        first = (np.flatnonzero(np.r_[True, sorted_codes[1:] != sorted_codes[:-1]]) if order.size
-                 else np.empty(0, dtype=np.int64))
-        self.keys = np.asarray(uniques, dtype=object)[sorted_codes[first]].astype(str).astype(object)
-        self.starts = first.astype(np.int64)
-        self.session = session[order]
+        self.keys = case_order.keys.astype(str).astype(object)
+        self.starts = case_order.starts[:-1]
+        self.session = observations["session"].to_numpy(dtype=float)[order]
         self.outcome = observations["outcome"].to_numpy(dtype=float)[order]
         self.phase_index = observations["phase_index"].to_numpy()[order]
         self.condition = _text_in_order(observations["condition"], order)

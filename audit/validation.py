@@ -112,6 +112,27 @@ def case_key(study: pd.Series, case: pd.Series, series: pd.Series) -> pd.Series:
     return pd.Series(np.asarray(keys, dtype=object)[inverse.ravel()], index=study.index, dtype=object)
 
 
+@dataclass(frozen=True)
+class CaseOrder:
+    """Rows of observations in (case_key, session) order, as ``sort_values(["case_key",
+    "session"], kind="stable")`` gives them, without copying the table."""
+
+    rows: np.ndarray  # row positions in that order
+    starts: np.ndarray  # position in ``rows`` where each case begins, plus the total at the end
+    keys: np.ndarray  # each case's key (object), in the same order
+
+    @classmethod
+    def of(cls, observations: pd.DataFrame) -> "CaseOrder":
+        codes, uniques = pd.factorize(observations["case_key"], sort=True)
+        rows = np.lexsort((observations["session"].to_numpy(dtype=float), codes))
+        sorted_codes = codes[rows]
+        starts = np.flatnonzero(np.r_[True, sorted_codes[1:] != sorted_codes[:-1], True])
+        if not rows.size:
+            starts = np.zeros(1, dtype=np.int64)
+        keys = np.asarray(uniques, dtype=object)[sorted_codes[starts[:-1]]]
+        return cls(rows, starts.astype(np.int64), keys)
+
+
 def compact_rows(rows) -> str:
     """'2-5, 9' for rows [2, 3, 4, 5, 9]."""
     values = sorted(set(int(r) for r in rows))

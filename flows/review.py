@@ -37,8 +37,8 @@ from audit.config import AuditConfig, load_config  # noqa: E402
 from audit.ingest import FileProblem, FileRead  # noqa: E402
 from audit.intake import ReviewInput  # noqa: E402
 from audit.parallel import default_workers, input_bytes, workers_for_input  # noqa: E402
-from flows import workers as _workers  # noqa: E402
 from audit.store import StoreError  # noqa: E402
+from flows import workers as _workers  # noqa: E402
 
 __all__ = [
     "FLOW_NAME",
