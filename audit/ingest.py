@@ -61,7 +61,7 @@ class FileRead:
         """Drop the raw rows (keeping their count and columns) once they have been prepared."""
         if self.n_rows_released is None:
             self.n_rows_released = len(self.rows)
-            self.rows = self.rows.iloc[0:0]
+            self.rows = self.rows.iloc[0:0].copy()  # a view would keep the whole file's columns alive
 
 
 def find_input_files(paths: list[str | Path]) -> tuple[list[Path], list[FileProblem]]:

@@ -78,7 +78,7 @@ def _concat_releasing(reads: list[FileRead]) -> pd.DataFrame:
     """The rows of all files in one frame, built column by column: each file's copy of a column is
     dropped once that column is joined, so the peak is one column above the files' rows."""
     frames = [r.rows for r in reads if len(r.rows)]
-    empty = reads[0].rows.iloc[0:0]
+    empty = reads[0].rows.iloc[0:0].copy()  # (a view would keep the first file's columns alive)
     columns = list(frames[0].columns) if frames else []
     same = all(list(f.columns) == columns and (f.dtypes == frames[0].dtypes).all() for f in frames)
     for r in reads:
