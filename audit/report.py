@@ -644,13 +644,17 @@ def write_report(store_path, out_path=None, run: str = "latest") -> Path:
     cases = _read_optional(store, "cases", run_id)
     if cases is None:
         raise KeyError(f"run {run_id} in {store_path} has no cases table; nothing to report")
-    observations = _read_optional(store, "observations", run_id)
     quarantine = _read_optional(store, "quarantine", run_id)
     adjustments = _read_optional(store, "adjustments", run_id)
     names = set(info.get("tables") or [])
     if set(SUMMARY_TABLES) - {"summary_notes"} <= names:
         tables = {n: _read_optional(store, n, run_id) for n in SUMMARY_TABLES if n in names}
+        # only the observations of the cases drawn (memory: a large review's table is not read whole)
+        drawn, _ = _cases_to_draw(cases, tables.get("summary_study_verdicts"))
+        observations = _read_optional(store, "observations", run_id,
+                                      case_key=sorted(set(drawn["case_key"].astype(str))))
     else:
+        observations = _read_optional(store, "observations", run_id)
         accepted = None
         for name in ("accepted_cases", "accepted", "cases_accepted"):
             accepted = _read_optional(store, name, run_id)

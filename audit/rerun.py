@@ -353,7 +353,7 @@ def _validators() -> dict[str, Callable[[pd.DataFrame], pd.DataFrame]]:
 
 def open_store(path: str | Path) -> ResultsStore:
     """The results store at ``path`` with the pandera schema of every table as its validators."""
-    return ResultsStore(path, validators=_validators())
+    return ResultsStore(path, validators=_validators(), categories_as_text=True)
 
 
 def _diagnostic_tables(store: ResultsStore) -> list[str]:

@@ -262,13 +262,36 @@ def _empty_runs() -> pd.DataFrame:
     return pd.DataFrame(data)
 
 
-def _write_parquet(df: pd.DataFrame, path: Path, row_group_size: int) -> None:
+def _text_dictionary(t: pa.DataType) -> bool:
+    return pa.types.is_dictionary(t) and (pa.types.is_string(t.value_type) or pa.types.is_large_string(t.value_type))
+
+
+def _arrow_table(df: pd.DataFrame, categories_as_text: bool) -> tuple[pa.Table, pa.Schema]:
+    """``df`` as an Arrow table, and the schema to write it with. With ``categories_as_text``,
+    categorical columns of text (text held as codes in memory) are written as plain text, so a
+    table's files look the same whatever its in-memory dtypes were, and reading them back gives
+    strings."""
     table = pa.Table.from_pandas(df, preserve_index=False)
-    with pq.ParquetWriter(path, table.schema) as writer:
+    if not categories_as_text:
+        return table, table.schema
+    text = [c for c in df.columns
+            if isinstance(df[c].dtype, pd.CategoricalDtype) and _text_dictionary(table.schema.field(c).type)]
+    if not text:
+        return table, table.schema
+    plain = pa.Schema.from_pandas(df.iloc[:0].astype({c: "str" for c in text}), preserve_index=False)
+    fields = [plain.field(f.name) if f.name in text else f for f in table.schema]
+    return table, pa.schema(fields, metadata=plain.metadata)
+
+
+def _write_parquet(df: pd.DataFrame, path: Path, row_group_size: int, categories_as_text: bool = False) -> None:
+    table, schema = _arrow_table(df, categories_as_text)
+    convert = schema != table.schema  # decoded a row group at a time (memory)
+    with pq.ParquetWriter(path, schema) as writer:
         if table.num_rows == 0:
-            writer.write_table(table)
+            writer.write_table(table.cast(schema) if convert else table)
         for start in range(0, table.num_rows, row_group_size):
-            writer.write_table(table.slice(start, row_group_size))
+            part = table.slice(start, row_group_size)
+            writer.write_table(part.cast(schema) if convert else part)
             _at("row_group")
     _fsync_file(path)
 
@@ -360,7 +383,7 @@ class Run:
                 raise ValueError(f"table {name!r}: column names must be strings, got {bad!r}")
             folder = self.staging / name
             folder.mkdir(parents=True, exist_ok=False)
-            _write_parquet(df, folder / PART_FILE, self.store.row_group_size)
+            _write_parquet(df, folder / PART_FILE, self.store.row_group_size, self.store.categories_as_text)
             _fsync_dir(folder)
         except BaseException:
             self._state = "failed"
@@ -460,6 +483,8 @@ class ResultsStore:
 
     validators: table name (or fnmatch pattern such as ``"summary_*"``) -> callable taking the
     frame and returning the (validated) frame, or raising (e.g. a pandera error) to refuse it.
+    categories_as_text: write categorical columns of text as plain text columns (decoded a row
+    group at a time), so they read back as strings; by default categoricals stay categoricals.
     """
 
     def __init__(
@@ -468,11 +493,13 @@ class ResultsStore:
         validators: Mapping[str, Validator] | None = None,
         *,
         row_group_size: int = 1_000_000,
+        categories_as_text: bool = False,
     ) -> None:
         self.path = Path(path)
         self.path.mkdir(parents=True, exist_ok=True)
         self.validators = dict(validators or {})
         self.row_group_size = max(int(row_group_size), 1)
+        self.categories_as_text = bool(categories_as_text)
 
     def __repr__(self) -> str:
         return f"ResultsStore({str(self.path)!r})"
@@ -617,12 +644,12 @@ class ResultsStore:
             )
         return wanted
 
-    def _read_partition(self, name: str, run_id: str) -> pd.DataFrame | None:
+    def _read_partition(self, name: str, run_id: str, filters: Mapping[str, Any] | None = None) -> pd.DataFrame | None:
         folder = self.path / name / f"run={run_id}"
         files = sorted(folder.glob("part-*.parquet")) if folder.is_dir() else []
         if not files:
             return None
-        frames = [pd.read_parquet(f) for f in files]
+        frames = [_read_part(f, filters) for f in files]
         df = frames[0] if len(frames) == 1 else pd.concat(frames, ignore_index=True)
         df["run"] = pd.Series(run_id, index=df.index, dtype=str)
         return df
@@ -639,7 +666,7 @@ class ResultsStore:
         _check_table_name(name)
         runs = self._read_ledger()
         run_ids = self._resolve_runs(runs, run)
-        frames = [f for r in run_ids if (f := self._read_partition(name, r)) is not None]
+        frames = [f for r in run_ids if (f := self._read_partition(name, r, filters)) is not None]
         if not frames:
             where = f"run {run_ids[0]}" if len(run_ids) == 1 else f"any of {len(run_ids)} runs"
             raise KeyError(
@@ -674,6 +701,33 @@ class ResultsStore:
         out = df.loc[df[key].isin(wanted)].drop(columns="run").reset_index(drop=True)
         out.attrs["source_run"] = run_id
         return out
+
+
+def _text_filters(schema: pa.Schema, filters: Mapping[str, Any] | None) -> list[tuple[str, str, list[str]]]:
+    """The filters that can be applied while reading: text values on text columns (rows of other
+    filters are dropped afterwards by :func:`_apply_filters`, which every read goes through)."""
+    out = []
+    for column, value in (filters or {}).items():
+        values = list(value) if isinstance(value, (list, tuple, set, frozenset)) else [value]
+        field = schema.field(column) if column in schema.names else None
+        if (field is not None and (pa.types.is_string(field.type) or pa.types.is_large_string(field.type))
+                and values and all(isinstance(v, str) for v in values)):
+            out.append((column, "in", values))
+    return out
+
+
+def _read_part(path: Path, filters: Mapping[str, Any] | None = None) -> pd.DataFrame:
+    """One part file as a frame. With text filters, only the matching rows are built: the text
+    columns are read as dictionaries (row group by row group) and decoded after filtering, so a
+    few cases of a large table cost memory for a few cases."""
+    schema = pq.read_schema(path)
+    pushed = _text_filters(schema, filters)
+    if not pushed:
+        return pd.read_parquet(path)
+    text = [f.name for f in schema if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)]
+    table = pq.read_table(path, filters=pushed, read_dictionary=text)
+    table = table.cast(pa.schema([schema.field(c) for c in table.column_names], metadata=table.schema.metadata))
+    return table.to_pandas()
 
 
 def _apply_filters(df: pd.DataFrame, filters: Mapping[str, Any], name: str) -> pd.DataFrame:

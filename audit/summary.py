@@ -973,9 +973,9 @@ def summarize(cases: pd.DataFrame, alpha: float = 0.05, diagnose_at_rho: Diagnos
 # ----------------------------------------------------------------------------- store and CLI
 
 
-def _read_optional(store, name: str, run: str) -> pd.DataFrame | None:
+def _read_optional(store, name: str, run: str, **filters) -> pd.DataFrame | None:
     try:
-        return store.table(name, run=run).drop(columns="run", errors="ignore")
+        return store.table(name, run=run, **filters).drop(columns="run", errors="ignore")
     except (KeyError, FileNotFoundError):
         return None
 

@@ -12,24 +12,30 @@ from audit.config import CONDITIONS, DIRECTIONS, OUTCOME_SCALES
 QUARANTINE_LEVELS = ["file", "row", "case"]
 
 
+# Text of the observations repeats on every point of a case (ids, labels, file names): held in
+# memory as categoricals (one code per row), a fraction of the size of one string per row. The
+# results store writes them as plain text (audit.store), so reading the store gives strings.
+Text = pd.CategoricalDtype
+
+
 class Observations(pa.DataFrameModel):
     """Clean observations: one row per accepted point, sorted by case and session."""
 
-    case_key: Series[str] = pa.Field(str_length={"min_value": 1})
-    study: Series[str]
-    case: Series[str]
-    series: Series[str]
+    case_key: Series[Text] = pa.Field(str_length={"min_value": 1})
+    study: Series[Text]
+    case: Series[Text]
+    series: Series[Text]
     session: Series[float]
     outcome: Series[float]
-    phase: Series[str]
+    phase: Series[Text]
     phase_index: Series[int] = pa.Field(ge=1)
-    condition: Series[str] = pa.Field(isin=list(CONDITIONS))
-    design: Series[str]
-    outcome_scale: Series[str] = pa.Field(nullable=True, isin=list(OUTCOME_SCALES))
-    desired_direction: Series[str] = pa.Field(nullable=True, isin=list(DIRECTIONS))
-    tier: Series[str] = pa.Field(nullable=True)
-    source_file: Series[str]
-    source_sheet: Series[str]
+    condition: Series[Text] = pa.Field(isin=list(CONDITIONS))
+    design: Series[Text]
+    outcome_scale: Series[Text] = pa.Field(nullable=True, isin=list(OUTCOME_SCALES))
+    desired_direction: Series[Text] = pa.Field(nullable=True, isin=list(DIRECTIONS))
+    tier: Series[Text] = pa.Field(nullable=True)
+    source_file: Series[Text]
+    source_sheet: Series[Text]
     source_row: Series[int]
     n_source_rows: Series[int] = pa.Field(ge=1)
     adjusted: Series[bool]

@@ -33,7 +33,7 @@ def demo(tmp_path_factory):
     prep = load_review([review.data_folder], AuditConfig()).prepared
     # one study id and one case id that would run as HTML if they were not escaped
     first = sorted(prep.observations["study"].unique())[0]
-    obs = prep.observations.copy()
+    obs = prep.observations.astype({"study": "str", "case": "str"})  # (categoricals take no new labels)
     obs["study"] = obs["study"].replace({first: EVIL_STUDY})
     key = obs.loc[obs["study"] == EVIL_STUDY, "case_key"].iloc[0]
     obs.loc[obs["case_key"] == key, "case"] = EVIL_CASE

@@ -12,6 +12,7 @@ import threading
 import time
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pandera.pandas as pa
 import pytest
@@ -72,6 +73,33 @@ def committed_folders(root: Path, table: str) -> set[str]:
 # --------------------------------------------------------------------------- basic round trip
 
 
+def test_categories_as_text_writes_the_same_files_as_strings(tmp_path):
+    """A categorical text column is stored as the text column it stands for (pyarrow reads the
+    file schema), in several row groups, with missing values kept; other categoricals are untouched."""
+    import pyarrow.parquet as pq
+
+    labels = ["S1", None, "S2", "S1", "S3"] * 3
+    plain = pd.DataFrame({"study": pd.Series(labels, dtype="str"), "x": range(15),
+                          "level": pd.Categorical([1, 2, 3] * 5)})
+    coded = plain.assign(study=plain["study"].astype("category"))
+    files = {}
+    for name, df in (("plain", plain), ("coded", coded)):
+        store = ResultsStore(tmp_path / name, categories_as_text=True, row_group_size=4)
+        write_run(store, {"t": df})
+        files[name] = next((tmp_path / name / "t").rglob("*.parquet"))
+        got = store.table("t").drop(columns="run")
+        assert str(got["study"].dtype) == "str"
+        assert got["level"].astype(int).tolist() == [1, 2, 3] * 5
+        assert got["study"].isna().tolist() == [v is None for v in labels]
+        assert got["study"].dropna().tolist() == [v for v in labels if v is not None]
+    a, b = (pq.read_schema(files[n]) for n in ("plain", "coded"))
+    assert a.field("study").type == b.field("study").type
+    assert a.pandas_metadata["columns"][0] == b.pandas_metadata["columns"][0]
+    assert pq.ParquetFile(files["coded"]).num_row_groups == 4
+
+
+
+
 def test_round_trip_and_ledger(tmp_path):
     store = ResultsStore(tmp_path / "store")
     df = rich_frame()
@@ -128,6 +156,29 @@ def test_plain_pandas_reads_the_table_folder(tmp_path):
     assert "run" in raw.columns
     assert len(raw) == 10
     assert raw.groupby(raw["run"].astype(str), observed=True).size().to_dict() == {r1: 4, r2: 6}
+
+
+def test_text_filters_read_only_matching_rows_and_agree_with_filtering_after(tmp_path):
+    """Filters on text columns are applied while reading (row groups of dictionaries); the rows,
+    dtypes and order are those of reading everything and filtering with pandas."""
+    n = 50
+    df = pd.DataFrame({
+        "case_key": [f"k{i % 7}" for i in range(n)],
+        "study": pd.Series([None if i % 5 == 0 else f"S{i % 3}" for i in range(n)], dtype="str"),
+        "x": np.arange(n, dtype=float),
+        "flag": [i % 2 == 0 for i in range(n)],
+    })
+    store = ResultsStore(tmp_path / "store", row_group_size=8)
+    write_run(store, {"t": df})
+    everything = store.table("t")
+    for filters in ({"case_key": ["k1", "k3", "absent"]}, {"case_key": "k2"}, {"study": ["S1"], "case_key": ["k1", "k2"]},
+                    {"case_key": ["k1"], "flag": True}, {"case_key": []}, {"study": ["S0", 1]}):
+        want = everything
+        for column, value in filters.items():
+            values = list(value) if isinstance(value, list) else [value]
+            want = want[want[column].isin(values)]
+        got = store.table("t", **filters)
+        pd.testing.assert_frame_equal(got, want.reset_index(drop=True))
 
 
 def test_latest_all_specific_and_filters(tmp_path):
