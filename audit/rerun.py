@@ -24,7 +24,7 @@ import inspect
 import json
 import logging
 from collections import deque
-from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, MutableMapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -574,7 +574,8 @@ def assemble_tables(review: ReviewInput, plan: ReusePlan,
 
     Computed ``cases`` rows get the accepted-case columns (n_points, quality flags ...) that the
     diagnostics do not already hold; every diagnostics row gets its case's ``case_hash``.
-    Rows are ordered as the accepted cases.
+    Rows are ordered as the accepted cases. Each batch's copy of a table is dropped from its
+    (mutable) mapping once the table is joined, so no table is held twice for long.
     """
     prep = review.prepared
     order = {k: i for i, k in enumerate(prep.cases["case_key"])} if len(prep.cases) else {}
@@ -590,6 +591,9 @@ def assemble_tables(review: ReviewInput, plan: ReusePlan,
     }
     for name in names:
         computed = _concat([r[name] for r in batch_results if name in r])
+        for r in batch_results:
+            if isinstance(r, MutableMapping):
+                r.pop(name, None)
         if len(computed.columns) and "case_key" in computed.columns:
             computed = computed.drop(columns=[HASH_KEY], errors="ignore")
             if name == "cases" and len(prep.cases):

@@ -438,7 +438,7 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
     # ---- design names
     given = good["design"].notna()
     good.loc[given, "design"] = _map_unique(good.loc[given, "design"], normalise_design)
-    good["design_source"] = np.where(given, "given", "inferred")
+    good["design_source"] = pd.Categorical.from_codes(np.where(given, 0, 1), ["given", "inferred"])
     if (~given).any():
         phase_conditions = (
             good[~given].groupby(["case_key", "phase_index"], sort=True)["condition"].first().dropna()
@@ -455,11 +455,14 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
                 problems.add(key, f"missing_{needed}_phase",
                              f"case has no {needed} phase; each case needs at least one baseline and one treatment phase",
                              "condition", None)
-    phase_sizes = good[~alternating].groupby(["case_key", "phase_index"], sort=False).agg(
+    # (only the columns needed: a masked copy of the whole table would double it for a moment)
+    phase_sizes = good.loc[~alternating, ["case_key", "phase_index", "session", "phase", "source_file"]].groupby(
+        ["case_key", "phase_index"], sort=False).agg(
         n=("session", "size"), phase=("phase", "first"), first=("session", "min"), last=("session", "max"),
         file=("source_file", "first"),
     )
-    cond_sizes = good[alternating].groupby(["case_key", "condition"], sort=False).agg(n=("session", "size"))
+    cond_sizes = good.loc[alternating, ["case_key", "condition", "session"]].groupby(
+        ["case_key", "condition"], sort=False).agg(n=("session", "size"))
     for (key, idx), row in phase_sizes[phase_sizes["n"] < MIN_PHASE_POINTS].iterrows():
         problems.add(key, "phase_too_short",
                      f"phase {row['phase']!r} (phase {idx}, sessions {row['first']:g}-{row['last']:g}) has {row['n']} point(s); "

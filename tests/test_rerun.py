@@ -192,6 +192,28 @@ def test_bounded_results_keeps_few_batches_in_flight(review):
     assert max(peak) == 3
 
 
+def test_assemble_tables_joins_batches_in_case_order_and_empties_them(review):
+    """Batches (cut by length, so out of case order) joined equal one batch of every case; each
+    batch's tables are dropped from its mapping once joined."""
+    from audit.diagnose import diagnose_cases
+
+    obs = review.prepared.observations
+    plan = rerun.plan_run(review, None, AuditConfig(), version="test")
+    whole = rerun.assemble_tables(review, plan, [diagnose_cases(obs)])
+    batches = [diagnose_cases(rerun.take_rows(obs, rows)) for rows in rerun.case_batch_rows(obs, 4)]
+    assert len(batches) > 2
+    joined = rerun.assemble_tables(review, plan, batches)
+    assert all(len(b) == 0 for b in batches)
+    for name in ("cases", "phases", "contrasts"):
+        a, b = whole[name], joined[name]
+        for col in a.columns:  # categorical labels join as text when batches differ in categories
+            if isinstance(a[col].dtype, pd.CategoricalDtype) or isinstance(b[col].dtype, pd.CategoricalDtype):
+                a[col], b[col] = a[col].astype(str), b[col].astype(str)
+        pd.testing.assert_frame_equal(a, b)
+    assert joined["cases"]["case_key"].astype(str).tolist() == review.prepared.cases["case_key"].astype(str).tolist()
+    assert joined["cases"]["case_hash"].notna().all()
+
+
 # ----------------------------------------------------------------------------------- runs
 
 
