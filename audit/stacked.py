@@ -185,9 +185,9 @@ def case_design_stacks(session, phase_index, condition, design, phase_label, cas
     """
     session = np.asarray(session, dtype=float)
     phase_index = np.asarray(phase_index)
-    condition = np.asarray(condition).astype(str)
-    design = np.asarray(design).astype(str)
-    label = np.asarray(phase_label).astype(str)
+    condition = np.asarray(condition).astype(str, copy=False)
+    design = np.asarray(design)  # read at the first row of each case only
+    label = np.asarray(phase_label)  # read on the treatment rows of alternating designs only
     starts = np.asarray(case_starts, dtype=np.int64)
     N = session.size
     m = starts.size
@@ -197,7 +197,7 @@ def case_design_stacks(session, phase_index, condition, design, phase_label, cas
     n_case = ends - starts
     row_case = np.repeat(np.arange(m), n_case)
     t = session - session[starts][row_case]
-    alt = design[starts] == "alternating"
+    alt = design[starts].astype(str, copy=False) == "alternating"
     treat = condition == "treatment"
 
     # phases of the level/trend models: a new phase where phase_index changes within a case
@@ -227,7 +227,8 @@ def case_design_stacks(session, phase_index, condition, design, phase_label, cas
     n_labels = np.zeros(m, dtype=np.int64)
     if alt_rows.any():
         rr = np.flatnonzero(alt_rows)
-        lab_codes, lab_inv = np.unique(label[rr], return_inverse=True)  # sorted like sorted(set(...))
+        lab_codes, lab_inv = np.unique(label[rr].astype(str, copy=False),
+                                       return_inverse=True)  # sorted like sorted(set(...))
         pair = row_case[rr] * lab_codes.size + lab_inv.ravel()
         upair, pinv = np.unique(pair, return_inverse=True)
         pcase = upair // lab_codes.size
@@ -1159,7 +1160,9 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
     den = np.sum(E_sc**2, axis=1)
     rr = np.full(m, R.OK, dtype=object)
     rr[~(den > 0)] = R.ZERO_RESIDUAL_VARIANCE
-    data_r = series_reasons(Y, E_fill)  # also the data reasons of Breusch-Godfrey and Ljung-Box
+    # data reasons (also those of Breusch-Godfrey and Ljung-Box); the same function of the same
+    # arrays as the contrast rows' when no residual row was replaced (the usual case)
+    data_r = sreason.copy() if np.array_equal(E_fill, Ef) else series_reasons(Y, E_fill)
     rr = np.where(rr == R.OK, data_r, rr)
     rr[~np.all(np.isfinite(E_ref), axis=1)] = R.NON_FINITE_INPUT
     r1_reason = np.where(has_x, rr, r1_reason)
