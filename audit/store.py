@@ -690,7 +690,7 @@ class ResultsStore:
         if runs.empty or not wanted:
             return pd.DataFrame()
         run_id = str(runs["run_id"].iloc[-1])
-        df = self._read_partition(table, run_id)
+        df = self._read_partition(table, run_id, {key: sorted(wanted)})  # matching rows only, when text
         if df is None:
             return pd.DataFrame()
         if key not in df.columns:
@@ -698,7 +698,8 @@ class ResultsStore:
                 f"table {table!r} of run {run_id} has no key column {key!r}; "
                 f"columns: {list(df.columns)}"
             )
-        out = df.loc[df[key].isin(wanted)].drop(columns="run").reset_index(drop=True)
+        keep = df[key].isin(wanted).to_numpy(dtype=bool)
+        out = (df if keep.all() else df.loc[keep]).drop(columns="run").reset_index(drop=True)
         out.attrs["source_run"] = run_id
         return out
 

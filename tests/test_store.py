@@ -419,6 +419,8 @@ def test_reusable_rows_of_latest_run(tmp_path):
     assert store.reusable("cases", []).empty
     assert store.reusable("phases", ["h1"]).empty
     assert store.reusable("cases", ["nothing"]).empty
+    every = store.reusable("cases", {f"h{i}" for i in range(5)} | {"missing"})
+    pd.testing.assert_frame_equal(every, cases_frame("new", 5))  # all rows, in stored order
     with pytest.raises(KeyError, match="no key column"):
         store.reusable("cases", ["h1"], key="nope")
     # reused rows can be written straight into the next run
