@@ -564,7 +564,9 @@ def _concat(frames: list[pd.DataFrame]) -> pd.DataFrame:
     frames = [f for f in frames if f is not None and len(f.columns)]
     nonempty = [f for f in frames if len(f)]
     if nonempty:
-        return nonempty[0].copy() if len(nonempty) == 1 else pd.concat(nonempty, ignore_index=True)
+        # one frame: itself (copy-on-write keeps the caller's frame unchanged; a copy would hold
+        # a large reused table twice)
+        return nonempty[0] if len(nonempty) == 1 else pd.concat(nonempty, ignore_index=True)
     return frames[0].iloc[0:0].copy() if frames else pd.DataFrame()
 
 

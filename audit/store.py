@@ -283,9 +283,17 @@ def _arrow_table(df: pd.DataFrame, categories_as_text: bool) -> tuple[pa.Table, 
     return table, pa.schema(fields, metadata=plain.metadata)
 
 
+# Rows per row group of a table whose categoricals are decoded to text while it is written: every
+# column of a row group is built before the group is written, so this bounds the decoded text in
+# memory (a million rows of a dozen text columns would be about 0.3 GB).
+DECODED_ROW_GROUP_ROWS = 131_072
+
+
 def _write_parquet(df: pd.DataFrame, path: Path, row_group_size: int, categories_as_text: bool = False) -> None:
     table, schema = _arrow_table(df, categories_as_text)
     convert = schema != table.schema  # decoded a row group at a time (memory)
+    if convert:
+        row_group_size = min(row_group_size, DECODED_ROW_GROUP_ROWS)
     with pq.ParquetWriter(path, schema) as writer:
         if table.num_rows == 0:
             writer.write_table(table.cast(schema) if convert else table)
