@@ -36,7 +36,7 @@ from audit import __version__
 from audit.config import AuditConfig
 from audit.ingest import FileProblem, FileRead, InputError, read_input_file
 from audit.intake import ReviewInput, combine, read_files
-from audit.validation import CaseOrder
+from audit.validation import CaseOrder, validate_in_slices
 from audit.memory import release_freed_memory
 from audit.parallel import DiagnosePool, input_bytes, workers_for_input
 from audit.store import ResultsStore, content_hashes_of_slices, file_sha256
@@ -344,7 +344,9 @@ def _validators() -> dict[str, Callable[[pd.DataFrame], pd.DataFrame]]:
                 model = getattr(results, cls_name, None)
                 if model is not None:
                     models[table] = model
-    validators = {name: (lambda df, m=model: m.validate(df, lazy=True)) for name, model in models.items()}
+    # whole cases at a time for long tables: pandera's working copies stay slice-sized (a whole
+    # observations table would be copied, its text checked as one string object per row)
+    validators = {name: (lambda df, m=model: validate_in_slices(df, m)) for name, model in models.items()}
     from schemas.summary import summary_validators
 
     validators.update(summary_validators())

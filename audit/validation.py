@@ -511,11 +511,11 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
     observations["adjusted"] = observations["adjusted"].astype(bool)
     cases = _accepted_cases(accepted, adj_counts)
     del accepted
-    observations = _typed(observations, Observations)
+    observations = validate_in_slices(observations, Observations)
 
     total_read = n + sum(p.n_rows for p in file_problems)
-    result = PreparedInput(observations, _typed(cases, AcceptedCases),
-                           _typed(adj, Adjustments), _typed(quarantine, Quarantine), total_read)
+    result = PreparedInput(observations, validate_in_slices(cases, AcceptedCases),
+                           validate_in_slices(adj, Adjustments), validate_in_slices(quarantine, Quarantine), total_read)
     if result.rows_accepted + result.rows_quarantined != total_read:  # pragma: no cover - invariant guard
         raise AssertionError(
             f"row accounting broken: read {total_read}, accepted {result.rows_accepted}, "
@@ -527,7 +527,7 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
 _VALIDATE_CHUNK_ROWS = 200_000  # outgoing tables are validated in slices of whole cases (memory)
 
 
-def _typed(df: pd.DataFrame, schema) -> pd.DataFrame:
+def validate_in_slices(df: pd.DataFrame, schema) -> pd.DataFrame:
     """Validate an outgoing table (a failure here is a bug in sced-audit, not in the input).
 
     A long table whose cases are contiguous is validated in slices of whole cases (the schemas'

@@ -31,6 +31,7 @@ if "prefect" not in sys.modules and not _settings._OURS:
 from prefect import flow, get_run_logger, task  # noqa: E402
 from prefect.cache_policies import NONE  # noqa: E402
 from prefect.task_runners import ThreadPoolTaskRunner  # noqa: E402
+from prefect.utilities.annotations import quote  # noqa: E402
 
 from audit import rerun  # noqa: E402
 from audit.config import AuditConfig, load_config  # noqa: E402
@@ -228,7 +229,9 @@ def _audit_files(files: list[Path], path_problems: list[FileProblem], store: str
     _workers.close()  # the worker processes' memory goes back before the summary
     if _workers.fallback_reason():
         get_run_logger().warning(_workers.fallback_reason())
-    tables = summarize(review, plan, results, config.alpha, with_summary)
+    # quote: Prefect does not walk the batch tables (parameter introspection of many frames); the
+    # task gets this very list and empties it, so the flow holds no batch tables afterwards
+    tables = summarize(review, plan, quote(results), config.alpha, with_summary)
     del results
     summary = write_store(store, review, plan, tables, config, hashes, lock_timeout)
     del tables, review, plan, reads  # the report reads what it needs back from the store

@@ -277,3 +277,28 @@ def test_scheduled_deployment_runs_on_a_real_server(tmp_path):
     assert server_status(home) is None
     assert "Serving deployment" in output
     assert not [line for line in output.splitlines() if "ERROR" in line or "Traceback" in line], output
+
+
+def test_summarize_task_gets_the_flows_own_batch_results(prefect_harness, tmp_path, monkeypatch):
+    """The summarize task receives the very batch tables the flow collected (not copies of the list
+    and its dicts), so the tables it drops as it joins them are freed (memory)."""
+    collected, given = [], []
+    real_results, real_assemble = rerun.bounded_results, rerun.assemble_tables
+
+    def results_spy(*args, **kw):
+        for item in real_results(*args, **kw):
+            collected.append(item)
+            yield item
+
+    def assemble_spy(review, plan, batch_results):
+        given.append(batch_results)
+        given.append(list(batch_results))
+        return real_assemble(review, plan, batch_results)
+
+    monkeypatch.setattr(rerun, "bounded_results", results_spy)
+    monkeypatch.setattr(rerun, "assemble_tables", assemble_spy)
+    review_flow.run_review([FIXTURE / "data"], tmp_path / "store", batch_size=4, with_report=False)
+    assert len(collected) > 1
+    assert len(given[1]) == len(collected) and all(a is b for a, b in zip(given[1], collected))
+    assert given[0] == []  # emptied by the task: the flow holds no batch tables afterwards
+    assert all(len(d) == 0 for d in collected)

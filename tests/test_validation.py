@@ -229,4 +229,4 @@ def test_outgoing_tables_validated_in_slices_of_whole_cases(tmp_path, monkeypatc
     last = bad["case_key"].iloc[-1]
     bad.loc[bad.index[-1], "session"] = bad.loc[bad["case_key"] == last, "session"].iloc[0]
     with pytest.raises(pa.errors.SchemaErrors):
-        V._typed(bad, Observations)
+        V.validate_in_slices(bad, Observations)
