@@ -278,9 +278,13 @@ def _arrow_table(df: pd.DataFrame, categories_as_text: bool) -> tuple[pa.Table, 
             if isinstance(df[c].dtype, pd.CategoricalDtype) and _text_dictionary(table.schema.field(c).type)]
     if not text:
         return table, table.schema
-    plain = pa.Schema.from_pandas(df.iloc[:0].astype({c: "str" for c in text}), preserve_index=False)
+    # the text columns' fields and pandas metadata as a text column's; every other column's as is
+    plain = pa.Schema.from_pandas(df[text].iloc[:0].astype("str"), preserve_index=False)
     fields = [plain.field(f.name) if f.name in text else f for f in table.schema]
-    return table, pa.schema(fields, metadata=plain.metadata)
+    meta = json.loads(table.schema.metadata[b"pandas"])
+    as_text = {c["name"]: c for c in json.loads(plain.metadata[b"pandas"])["columns"]}
+    meta["columns"] = [as_text.get(c["name"], c) if c["name"] in text else c for c in meta["columns"]]
+    return table, pa.schema(fields, metadata={**table.schema.metadata, b"pandas": json.dumps(meta).encode()})
 
 
 # Rows per row group of a table whose categoricals are decoded to text while it is written: every

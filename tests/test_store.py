@@ -80,7 +80,9 @@ def test_categories_as_text_writes_the_same_files_as_strings(tmp_path):
 
     labels = ["S1", None, "S2", "S1", "S3"] * 3
     plain = pd.DataFrame({"study": pd.Series(labels, dtype="str"), "x": range(15),
-                          "level": pd.Categorical([1, 2, 3] * 5)})
+                          "level": pd.Categorical([1, 2, 3] * 5),
+                          "flag": pd.Series([True, None, False] * 5, dtype=object),
+                          "empty": pd.Series([None] * 15, dtype=object)})
     coded = plain.assign(study=plain["study"].astype("category"))
     files = {}
     for name, df in (("plain", plain), ("coded", coded)):
@@ -93,8 +95,8 @@ def test_categories_as_text_writes_the_same_files_as_strings(tmp_path):
         assert got["study"].isna().tolist() == [v is None for v in labels]
         assert got["study"].dropna().tolist() == [v for v in labels if v is not None]
     a, b = (pq.read_schema(files[n]) for n in ("plain", "coded"))
-    assert a.field("study").type == b.field("study").type
-    assert a.pandas_metadata["columns"][0] == b.pandas_metadata["columns"][0]
+    assert a == b and a.pandas_metadata == b.pandas_metadata
+    pd.testing.assert_frame_equal(pd.read_parquet(files["plain"]), pd.read_parquet(files["coded"]))
     assert pq.ParquetFile(files["coded"]).num_row_groups == 4
 
 
