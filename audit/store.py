@@ -262,8 +262,12 @@ def _empty_runs() -> pd.DataFrame:
     return pd.DataFrame(data)
 
 
+def _is_text(t: pa.DataType) -> bool:
+    return pa.types.is_string(t) or pa.types.is_large_string(t)
+
+
 def _text_dictionary(t: pa.DataType) -> bool:
-    return pa.types.is_dictionary(t) and (pa.types.is_string(t.value_type) or pa.types.is_large_string(t.value_type))
+    return pa.types.is_dictionary(t) and _is_text(t.value_type)
 
 
 def _arrow_table(df: pd.DataFrame, categories_as_text: bool) -> tuple[pa.Table, pa.Schema]:
@@ -702,7 +706,7 @@ class ResultsStore:
         if runs.empty or not wanted:
             return pd.DataFrame()
         run_id = str(runs["run_id"].iloc[-1])
-        df = self._read_partition(table, run_id, {key: sorted(wanted)})  # matching rows only, when text
+        df = self._read_partition(table, run_id, {key: list(wanted)})  # matching rows only, when text
         if df is None:
             return pd.DataFrame()
         if key not in df.columns:
@@ -717,14 +721,14 @@ class ResultsStore:
 
 
 def _text_filters(schema: pa.Schema, filters: Mapping[str, Any] | None) -> list[tuple[str, str, list[str]]]:
-    """The filters that can be applied while reading: text values on text columns (rows of other
-    filters are dropped afterwards by :func:`_apply_filters`, which every read goes through)."""
+    """The filters that can be applied while reading: text values on text columns. The callers
+    apply every filter again afterwards (:func:`_apply_filters`, the key check of ``reusable``),
+    so a filter left out here only costs memory."""
     out = []
     for column, value in (filters or {}).items():
         values = list(value) if isinstance(value, (list, tuple, set, frozenset)) else [value]
         field = schema.field(column) if column in schema.names else None
-        if (field is not None and (pa.types.is_string(field.type) or pa.types.is_large_string(field.type))
-                and values and all(isinstance(v, str) for v in values)):
+        if field is not None and _is_text(field.type) and values and all(isinstance(v, str) for v in values):
             out.append((column, "in", values))
     return out
 
@@ -737,7 +741,7 @@ def _read_part(path: Path, filters: Mapping[str, Any] | None = None) -> pd.DataF
     pushed = _text_filters(schema, filters)
     if not pushed:
         return pd.read_parquet(path)
-    text = [f.name for f in schema if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)]
+    text = [f.name for f in schema if _is_text(f.type)]
     table = pq.read_table(path, filters=pushed, read_dictionary=text)
     table = table.cast(pa.schema([schema.field(c) for c in table.column_names], metadata=table.schema.metadata))
     return table.to_pandas()
