@@ -9,11 +9,11 @@ eigenvalues at once by Imhof's (1961) inversion formula
 Numerical scheme (error controlled, vectorised over rows; see ``_imhof_rows``):
   * the eigenvalues of a row are divided by sqrt(sum lam^2) (P is scale free), so the
     integrand varies on a scale of order 1 in u whatever p is;
-  * u in [0, 3/4]: a 15-point Gauss-Kronrod panel (the integrand is analytic in |u| < 1, its
+  * u in [0, 1]: a 15-point Gauss-Kronrod panel (the integrand is analytic in |u| < 1, its
     singularities are at u = +-i/|lam_j| and |lam_j| <= 1);
-  * u in [3/4, U]: substitution u = exp(t) (du/u = dt), integrand sin(theta)/rho, initial
-    panels in t of width 0.75 over the first 3 units (where the integrand changes fastest),
-    ``_PANEL_WIDTH`` up to 4.5, then 3 (``_t_panel_edges``); the
+  * u in [1, U]: substitution u = exp(t) (du/u = dt), integrand sin(theta)/rho, initial
+    panels in t of width 1 over the first 3 units (where the integrand changes fastest),
+    ``_PANEL_WIDTH`` (2) up to 5, then 4 (``_t_panel_edges``); the
     acceptance rule below is the same on every panel.  In t the integrand is analytic in the strip
     |Im t| < pi/2 (singularities at t = -log|lam_j| +- i pi/2), so Gauss-Kronrod converges
     geometrically on every panel whatever the spread of the eigenvalues;
@@ -56,14 +56,14 @@ __all__ = [
 # Integral-scale tolerances (P error = integral error / pi).
 _TAIL_TOL = 1e-12
 _QUAD_TOL = 1e-9
-_PANEL_WIDTH = 1.5
+_PANEL_WIDTH = 2.0
 _MAX_SPLIT = 12
 # Initial t panels (see _t_panel_edges), lengths in t = log u from log(_FIRST_PANEL_END).
 _NARROW_SPAN = 3.0
-_NARROW_WIDTH = 0.75
-_WIDE_START = 4.5
-_WIDE_WIDTH = 3.0
-_FIRST_PANEL_END = 0.75  # in units of 1 / sqrt(sum lam^2)
+_NARROW_WIDTH = 1.0
+_WIDE_START = 5.0
+_WIDE_WIDTH = 4.0
+_FIRST_PANEL_END = 1.0  # in units of 1 / sqrt(sum lam^2)
 # Block size (rows * nodes * p) for the vectorised evaluation: bounds memory use and keeps the
 # temporaries of a block (about 200 kB each) in the processor cache.
 _BLOCK_ELEMENTS = 24_000
@@ -201,6 +201,27 @@ def _imhof_rows(lam: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.clip(prob, 0.0, 1.0), err / math.pi
 
 
+def _imhof_by_width(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``_imhof_rows`` on rows grouped by their number of nonzero eigenvalues, each row's
+    nonzeros moved to the front and the zero columns dropped (zeros contribute nothing to
+    theta or rho, but cost as much as any eigenvalue to evaluate): rows padded to a common
+    width, such as the main and the session-only Durbin-Watson rows of one stack, are then
+    integrated at their own width."""
+    nonzero = rows != 0.0
+    count = nonzero.sum(axis=1)
+    if np.all(count == rows.shape[1]):
+        return _imhof_rows(np.ascontiguousarray(rows))
+    # stable sort of each row on "is zero": its nonzeros first, in their order
+    order = np.argsort(~nonzero, axis=1, kind="stable")
+    packed = np.take_along_axis(rows, order, axis=1)
+    prob = np.empty(rows.shape[0])
+    err = np.empty(rows.shape[0])
+    for width in np.unique(count):
+        sel = np.flatnonzero(count == width)
+        prob[sel], err[sel] = _imhof_rows(np.ascontiguousarray(packed[sel, :width]))
+    return prob, err
+
+
 def prob_quadform_below_zero(eigenvalues, *, return_error: bool = False):
     """P(sum_j lam_j z_j^2 < 0), z iid N(0,1), by Imhof (1961) numerical inversion.
 
@@ -238,10 +259,7 @@ def prob_quadform_below_zero(eigenvalues, *, return_error: bool = False):
             err[two] = 0.0
         many = np.flatnonzero(mixed & ~two)
         if many.size:
-            rows = safe[many] / scale[many, None]
-            # Drop columns that are zero in every selected row (padding) to save work.
-            keep = np.any(rows != 0.0, axis=0)
-            prob[many], err[many] = _imhof_rows(np.ascontiguousarray(rows[:, keep]))
+            prob[many], err[many] = _imhof_by_width(safe[many] / scale[many, None])
     if one_row:
         return (float(prob[0]), float(err[0])) if return_error else float(prob[0])
     return (prob, err) if return_error else prob

@@ -55,6 +55,7 @@ __all__ = ["diagnose_stack", "diagnose_designs", "diagnose_series", "case_design
 DEFAULT_POWER_RHO = 0.3
 CASE_BLOCK = 50_000  # cases whose designs are built together in diagnose_series (bounds memory)
 STACK_ROWS = 1024  # rows per diagnose_stack call in diagnose_series / diagnose_designs (bounds memory)
+SIDE_BY_SIDE_ROWS = 8192  # cases whose stacks run side by side (_stack_columns_many; bounds memory)
 
 # Same thresholds as the per-case modules (audit.durbin_watson, audit.diagnose).
 _DW_RANK_RTOL = 1e-10  # smallest/largest singular value below this: no DW null distribution
@@ -111,23 +112,17 @@ def diagnose_designs(series: Sequence[np.ndarray], designs: Sequence, alpha: flo
     if total == 0:
         return pd.DataFrame()
     rho_all = None if supplied_rho is None else np.broadcast_to(np.asarray(supplied_rho, float), (total,))
-    parts, where = [], []
-    done = 0
+    runner = _SideBySide(progress, total)
     for group in stack_groups(designs).values():
         for s0 in range(0, len(group), STACK_ROWS):
             idx = group[s0:s0 + STACK_ROWS]
             Y = np.vstack([np.asarray(series[i], dtype=float) for i in idx])
             X = np.stack([designs[i].X for i in idx])
             C = np.stack([designs[i].contrast for i in idx])
-            parts.append(_stack_columns(
-                Y, X, C, alpha, None if rho_all is None else rho_all[idx], power_rho,
-                np.array([designs[i].model for i in idx], dtype=object),
-                np.array([designs[i].n_transitions for i in idx])))
-            where.append(np.asarray(idx))
-            done += len(idx)
-        if progress:
-            progress(done, total)
-    return _to_frame(parts, order=np.argsort(np.concatenate(where), kind="stable"))
+            runner.add(idx, (Y, X, C, alpha, None if rho_all is None else rho_all[idx], power_rho,
+                             np.array([designs[i].model for i in idx], dtype=object),
+                             np.array([designs[i].n_transitions for i in idx])))
+    return runner.frame()
 
 
 def diagnose_series(session, outcome, phase_index, condition, design, phase_label, case_starts,
@@ -152,8 +147,7 @@ def diagnose_series(session, outcome, phase_index, condition, design, phase_labe
     phase_index, condition = np.asarray(phase_index), np.asarray(condition)
     design, phase_label = np.asarray(design), np.asarray(phase_label)
     n_obs = session.size
-    parts, where = [], []
-    done = 0
+    runner = _SideBySide(progress, total)
     for b0 in range(0, total, CASE_BLOCK):
         b1 = min(b0 + CASE_BLOCK, total)
         r0, r1 = starts[b0], (starts[b1] if b1 < total else n_obs)
@@ -165,14 +159,43 @@ def diagnose_series(session, outcome, phase_index, condition, design, phase_labe
             rows = rows + r0
             for s0 in range(0, idx.size, STACK_ROWS):
                 sl = slice(s0, s0 + STACK_ROWS)
-                parts.append(_stack_columns(outcome[rows[sl]], X[sl], C[sl], alpha,
-                                            None if rho_all is None else rho_all[idx[sl]], power_rho,
-                                            models[sl], n_trans[sl]))
-                where.append(idx[sl])
-                done += idx[sl].size
-                if progress:
-                    progress(done, total)
-    return _to_frame(parts, order=np.argsort(np.concatenate(where), kind="stable"))
+                runner.add(idx[sl], (outcome[rows[sl]], X[sl], C[sl], alpha,
+                                     None if rho_all is None else rho_all[idx[sl]], power_rho,
+                                     models[sl], n_trans[sl]))
+    return runner.frame()
+
+
+class _SideBySide:
+    """Stacks collected for ``_stack_columns_many`` and run once they hold ``SIDE_BY_SIDE_ROWS``
+    cases (bounds memory); progress after each run; ``frame`` gives the rows in case order."""
+
+    def __init__(self, progress: ProgressFn | None, total: int):
+        self.progress, self.total = progress, total
+        self.parts: list[dict] = []
+        self.where: list[np.ndarray] = []
+        self.waiting: list[tuple] = []
+        self.waiting_rows = 0
+        self.done = 0
+
+    def add(self, idx: np.ndarray, args: tuple) -> None:
+        self.waiting.append((np.asarray(idx), args))
+        self.waiting_rows += len(idx)
+        if self.waiting_rows >= SIDE_BY_SIDE_ROWS:
+            self.run()
+
+    def run(self) -> None:
+        if not self.waiting:
+            return
+        self.parts.extend(_stack_columns_many([args for _, args in self.waiting]))
+        self.where.extend(idx for idx, _ in self.waiting)
+        self.done += self.waiting_rows
+        self.waiting, self.waiting_rows = [], 0
+        if self.progress:
+            self.progress(self.done, self.total)
+
+    def frame(self) -> pd.DataFrame:
+        self.run()
+        return _to_frame(self.parts, order=np.argsort(np.concatenate(self.where), kind="stable"))
 
 
 def case_design_stacks(session, phase_index, condition, design, phase_label, case_starts):
@@ -688,10 +711,10 @@ class _AR1Rows:
     """Cross products of [Q, e] per row such that [PQ, Pe]'[PQ, Pe] = G0 - rho G1 + rho^2 G2
     (``audit.ar1._Moments`` with the design of each row), and the AR(1) objective pieces."""
 
-    _FIELDS = ("A1", "A2", "qe1", "qe2", "ee0", "ee1", "ee2")
+    _FIELDS = ("n", "A1", "A2", "qe1", "qe2", "ee0", "ee1", "ee2")
 
     def __init__(self, E: np.ndarray, Qr: np.ndarray, A1r: np.ndarray, A2r: np.ndarray, n: int, k: int):
-        self.n, self.k = n, k
+        self.n, self.k = np.full(E.shape[0], n, dtype=np.int64), k  # n per row: stacks of one k can merge
         self.A1, self.A2 = A1r, A2r
         self.qe1 = np.einsum("mt,mtk->mk", E[:, :-1], Qr[:, 1:]) + np.einsum("mt,mtk->mk", E[:, 1:], Qr[:, :-1])
         self.qe2 = np.einsum("mt,mtk->mk", E[:, 1:-1], Qr[:, 1:-1])
@@ -701,9 +724,18 @@ class _AR1Rows:
 
     def take(self, rows: np.ndarray) -> "_AR1Rows":
         new = object.__new__(_AR1Rows)
-        new.n, new.k = self.n, self.k
+        new.k = self.k
         for name in self._FIELDS:
             setattr(new, name, getattr(self, name)[rows])
+        return new
+
+    @classmethod
+    def concat(cls, parts: Sequence["_AR1Rows"]) -> "_AR1Rows":
+        """The rows of several stacks of the same k (any n) as one set of rows."""
+        new = object.__new__(cls)
+        new.k = parts[0].k
+        for name in cls._FIELDS:
+            setattr(new, name, np.concatenate([getattr(p_, name) for p_ in parts]))
         return new
 
     def at(self, rho: np.ndarray):
@@ -795,9 +827,10 @@ def _grid_values(rows: _AR1Rows, du: np.ndarray, L: np.ndarray, logdet: np.ndarr
             w = np.linalg.solve(L[d], mxe[..., None])[..., 0]
             rss = mee - np.sum(w * w, axis=2)
         ld = logdet[d]
+        n_rows = rows.n[sl, None]
         with np.errstate(invalid="ignore", divide="ignore"):
             for meth in _METHODS:
-                out[meth][sl] = _objective_from_pieces(meth, rows.n, rows.k, g[None, :], rss, 0.0, ld, 0.0)[0]
+                out[meth][sl] = _objective_from_pieces(meth, n_rows, rows.k, g[None, :], rss, 0.0, ld, 0.0)[0]
     return out
 
 
@@ -958,11 +991,106 @@ def _to_frame(parts: list[dict], order: np.ndarray | None = None) -> pd.DataFram
 
 def _stack_columns(Y, X, C, alpha, supplied_rho, power_rho, models, n_transitions) -> dict:
     """The columns of ``diagnose_stack`` as arrays (see there); NaN and reasons, no warnings."""
+    return _stack_columns_many([(Y, X, C, alpha, supplied_rho, power_rho, models, n_transitions)])[0]
+
+
+def _stack_columns_many(stacks: Sequence[tuple]) -> list[dict]:
+    """``_stack_columns`` of several stacks (argument tuples), run side by side.
+
+    Each stack's computation (``_stack_steps``) stops where it needs one of the pieces that
+    cost about as much for a few rows as for many (the REML/ML search, the Newton search of
+    the power's critical values, the error-controlled Imhof integrals); ``_run_side_by_side``
+    collects those requests of all stacks, answers them in merged calls and resumes the stacks.
+    Every row's values are computed from its own inputs only, so the result of a stack does
+    not depend on the stacks it runs beside (up to the last bits of sums).
+    """
     with np.errstate(all="ignore"):
-        return _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_transitions)
+        return _run_side_by_side([_stack_steps(*args) for args in stacks])
 
 
-def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_transitions) -> dict:
+# Requests of _stack_steps, answered in this order (a stack that skips one waits for the others):
+# ("ar1", k, (rows, du, designs)) -> _ar1_fit's dict; ("quantile", (p, target), mu) -> (c, dens,
+# converged) of _ratio_quantile_newton; ("imhof", width, lam) -> P(Q < 0) per row.
+_REQUEST_ORDER = ("ar1", "quantile", "imhof")
+
+
+def _run_side_by_side(steps: list) -> list:
+    """Drive generators that yield (kind, key, payload) requests and return their result:
+    each round answers the pending requests of the earliest kind, those with equal keys in one
+    call (``_ANSWER``), and sends each generator its answer."""
+    results: list = [None] * len(steps)
+    pending: dict[int, tuple] = {}
+
+    def advance(i: int, answer) -> None:
+        try:
+            pending[i] = steps[i].send(answer)
+        except StopIteration as stop:
+            results[i] = stop.value
+
+    for i in range(len(steps)):
+        advance(i, None)
+    while pending:
+        kind = min((req[0] for req in pending.values()), key=_REQUEST_ORDER.index)
+        by_key: dict = defaultdict(list)
+        for i, req in pending.items():
+            if req[0] == kind:
+                by_key[req[1]].append(i)
+        for key, members in by_key.items():
+            answers = _ANSWER[kind]([pending[i][2] for i in members])
+            for i, answer in zip(members, answers):
+                del pending[i]
+                advance(i, answer)
+    return results
+
+
+def _split_rows(values, sizes: list[int]) -> list:
+    """Cut an array (or each array of a tuple) into consecutive pieces of ``sizes`` rows."""
+    cuts = np.cumsum(sizes)[:-1]
+    if isinstance(values, tuple):
+        return list(zip(*(np.split(v, cuts) for v in values)))
+    return np.split(values, cuts)
+
+
+def _answer_ar1(payloads: list) -> list:
+    """_ar1_fit of the rows of several stacks of one k in one call."""
+    if len(payloads) == 1:
+        return [_ar1_fit(*payloads[0])]
+    rows = _AR1Rows.concat([p_[0] for p_ in payloads])
+    offsets = np.cumsum([0] + [p_[2].A1.shape[0] for p_ in payloads])
+    du = np.concatenate([p_[1] + off for p_, off in zip(payloads, offsets)])
+    designs = _StackedMatrices(np.concatenate([p_[2].A1 for p_ in payloads]),
+                               np.concatenate([p_[2].A2 for p_ in payloads]))
+    fits = _ar1_fit(rows, du, designs)
+    sizes = [p_[1].size for p_ in payloads]
+    per_method = {meth: _split_rows(fits[meth], sizes) for meth in fits}
+    return [{meth: per_method[meth][j] for meth in fits} for j in range(len(payloads))]
+
+
+class _StackedMatrices:
+    """The AR(1) matrices of the designs of several stacks (what _ar1_fit reads of _Designs)."""
+
+    def __init__(self, A1: np.ndarray, A2: np.ndarray):
+        self.A1, self.A2 = A1, A2
+
+
+def _answer_quantile(payloads: list) -> list:
+    """_ratio_quantile_newton on the null eigenvalue rows of several stacks (same width and
+    target) in one call."""
+    mu, target = np.vstack([p_[0] for p_ in payloads]), payloads[0][1]
+    out = _ratio_quantile_newton(mu, np.full(mu.shape[0], target))
+    return _split_rows(out, [p_[0].shape[0] for p_ in payloads])
+
+
+def _answer_imhof(payloads: list) -> list:
+    """prob_quadform_below_zero on the eigenvalue rows of several stacks (same width) in one call."""
+    return _split_rows(prob_quadform_below_zero(np.vstack(payloads)), [p_.shape[0] for p_ in payloads])
+
+
+_ANSWER = {"ar1": _answer_ar1, "quantile": _answer_quantile, "imhof": _answer_imhof}
+
+
+def _stack_steps(Y, X, C, alpha, supplied_rho, power_rho, models, n_transitions):
+    """The columns of one stack (``_stack_columns``) as a generator of requests (``_run_side_by_side``)."""
     Y = np.asarray(Y, dtype=float)
     X = np.asarray(X, dtype=float)
     C = np.asarray(C, dtype=float)
@@ -1032,7 +1160,7 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
     ar_all, pos_in_ok = cr.ar_all, cr.pos_in_ok
     good = np.flatnonzero(ar_reason == R.OK)
     if good.size:
-        fits = _ar1_fit(ar_all.take(pos_in_ok[good]), du[good], des)
+        fits = yield ("ar1", k, (ar_all.take(pos_in_ok[good]), du[good], des))
         est, bound, failed = fits["REML"]
         rho_reml[good] = np.where(failed, np.nan, est)
         at_bound[good] = bound
@@ -1117,7 +1245,9 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
     d0 = _dw_rows(E0, Y)
 
     # exact critical value for the power (once per distinct design), then all p-values at once
-    power = _power_setup(des, float(power_rho), alpha)
+    power, mu_q = _power_start(des, float(power_rho), alpha)
+    if mu_q is not None:
+        power.set_quantiles(*(yield ("quantile", (mu_q.shape[1], power.target), (mu_q, power.target))))
     p = des.p
     p0 = des0.p
     width = max(p, p0, 1)
@@ -1130,12 +1260,15 @@ def _stack_columns_unguarded(Y, X, C, alpha, supplied_rho, power_rho, models, n_
         pieces.append(_pad(des0.mu[du0[row_sess]] - d0[row_sess, None], width))
     if power.polish_rows.size:
         pieces.append(_pad(des.mu[power.polish_rows] - power.c[power.polish_rows, None], width))
-    probs = prob_quadform_below_zero(np.vstack(pieces)) if pieces else np.empty(0)
+    probs = (yield ("imhof", width, np.vstack(pieces))) if pieces else np.empty(0)
     p_pos = np.full(m, np.nan)
     p_pos[row_main] = probs[:row_main.size]
     p0_pos = np.full(m, np.nan)
     p0_pos[row_sess] = probs[row_main.size:row_main.size + row_sess.size]
-    power_u = power.finish(probs[row_main.size + row_sess.size:], des)
+    lam_power = power.polish(probs[row_main.size + row_sess.size:], des)
+    if lam_power is not None:
+        power.set_power((yield ("imhof", lam_power.shape[1], lam_power)))
+    power_u = power.value
 
     d_lower, d_upper = critical_bounds(n, k - 1, alpha)
     out["dw_statistic"] = d
@@ -1238,46 +1371,72 @@ class _PowerSetup:
 
     def finish(self, polish_probs: np.ndarray, des: _Designs) -> np.ndarray:
         """Polish c by one Newton step on the error-controlled Imhof CDF, then the power."""
+        lam = self.polish(polish_probs, des)
+        if lam is not None:
+            self.set_power(prob_quadform_below_zero(lam))
+        return self.value
+
+    def polish(self, polish_probs: np.ndarray, des: _Designs) -> np.ndarray | None:
+        """Polish c by one Newton step on the error-controlled Imhof CDF; the eigenvalue rows
+        whose P(Q < 0) are the powers (``set_power``), None when no design needs one."""
         rows = self.polish_rows
         if rows.size == 0:
-            return self.value
+            return None
         c = self.c[rows] - (polish_probs - self.target) / self.dens[rows]
         off = ~np.isfinite(c) | (np.abs(c - self.c[rows]) > _POLISH_MAX_CORRECTION)
         if off.any():  # the fixed-panel search did not get close enough: the reference root finder
             c[off] = ratio_quantile(des.mu[rows[off]], np.full(int(off.sum()), self.target))
         self.c[rows] = c
-        self.value[rows] = _power_values(des, rows, c, self.rho)
-        return self.value
+        return _power_eigenvalues(des, rows, c, self.rho)
+
+    def set_power(self, probs: np.ndarray) -> None:
+        """The powers from P(Q < 0) of the rows of ``polish`` (NaN where c is not finite)."""
+        rows = self.polish_rows
+        self.value[rows] = np.where(np.isfinite(self.c[rows]), probs, np.nan)
+
+    def set_quantiles(self, c: np.ndarray, dens: np.ndarray, conv: np.ndarray) -> None:
+        """The result of the Newton search on ``start``'s rows."""
+        rows = self.polish_rows
+        self.c[rows] = np.where(conv, c, np.nan)
+        self.dens[rows] = dens
 
 
-def _power_setup(des: _Designs, rho: float, alpha: float) -> _PowerSetup:
-    """``durbin_watson.dw_power`` conditions and the Newton search of the critical values."""
+def _power_start(des: _Designs, rho: float, alpha: float) -> tuple[_PowerSetup, np.ndarray | None]:
+    """``durbin_watson.dw_power`` conditions; the null eigenvalue rows whose critical values the
+    Newton search must find (``_ratio_quantile_newton`` at ``target``, then ``set_quantiles``),
+    None when no design needs one."""
     ps = _PowerSetup(des.U)
     ps.rho, ps.alpha = rho, alpha
     usable = des.dw_ok & (des.p >= 2)
     if not (np.isfinite(rho) and abs(rho) < 1 and 0 < alpha < 1):
-        return ps
+        return ps, None
     if rho == 0.0:
         ps.value[usable] = alpha
-        return ps
+        return ps, None
     rows = np.flatnonzero(usable)
     if rows.size == 0:
-        return ps
+        return ps, None
     mu = des.mu[rows]
     spread = mu[:, -1] > mu[:, 0]
     rows, mu = rows[spread], mu[spread]
     ps.target = alpha if rho > 0 else 1.0 - alpha
     if rows.size == 0:
-        return ps
-    c, dens, conv = _ratio_quantile_newton(mu, np.full(rows.size, ps.target))
-    ps.c[rows] = np.where(conv, c, np.nan)
-    ps.dens[rows] = dens
+        return ps, None
     ps.polish_rows = rows
+    return ps, mu
+
+
+def _power_setup(des: _Designs, rho: float, alpha: float) -> _PowerSetup:
+    """``durbin_watson.dw_power`` conditions and the Newton search of the critical values."""
+    ps, mu = _power_start(des, rho, alpha)
+    if mu is not None:
+        ps.set_quantiles(*_ratio_quantile_newton(mu, np.full(mu.shape[0], ps.target)))
     return ps
 
 
-def _power_values(des: _Designs, rows: np.ndarray, c: np.ndarray, rho: float) -> np.ndarray:
-    """P_rho(reject) from the eigenvalues of L'(s(B - cI))L, G = N'S(rho)N = LL' (dw_power_grid)."""
+def _power_eigenvalues(des: _Designs, rows: np.ndarray, c: np.ndarray, rho: float) -> np.ndarray:
+    """Rows of eigenvalues of L'(s(B - cI))L, G = N'S(rho)N = LL' (dw_power_grid), whose
+    P(Q < 0) are the powers P_rho(reject)."""
     n = des.n
     p = des.p
     lag = np.abs(np.subtract.outer(np.arange(n), np.arange(n)))
@@ -1295,10 +1454,7 @@ def _power_values(des: _Designs, rows: np.ndarray, c: np.ndarray, rho: float) ->
     form = root.transpose(0, 2, 1) @ cmat @ root
     lam = np.linalg.eigvalsh(0.5 * (form + form.transpose(0, 2, 1)))
     big = np.abs(lam).max(axis=1, keepdims=True)
-    lam = np.where(np.abs(lam) < _EIG_ZERO_RTOL * big, 0.0, lam)
-    out = prob_quadform_below_zero(lam)
-    out[~np.isfinite(c)] = np.nan
-    return out
+    return np.where(np.abs(lam) < _EIG_ZERO_RTOL * big, 0.0, lam)
 
 
 def _breusch_godfrey(E_ref, data_r, des: _Designs, du, xreason, x_finite, n, k):

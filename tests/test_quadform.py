@@ -100,8 +100,11 @@ def test_initial_t_panels_cover_the_range_in_increasing_order():
         assert edges[-1] >= span and edges.size >= 2
         # narrow panels first, then the standard width, then wide ones
         widths = np.diff(edges)
-        assert np.all(widths[:4] == Q._NARROW_WIDTH) and widths[4] == Q._PANEL_WIDTH
-        assert np.all(widths[5:] == Q._WIDE_WIDTH)
+        n_narrow = round(Q._NARROW_SPAN / Q._NARROW_WIDTH)
+        n_middle = round((Q._WIDE_START - Q._NARROW_SPAN) / Q._PANEL_WIDTH)
+        assert np.allclose(widths[:n_narrow], Q._NARROW_WIDTH)
+        assert np.allclose(widths[n_narrow:n_narrow + n_middle], Q._PANEL_WIDTH)
+        assert np.allclose(widths[n_narrow + n_middle:], Q._WIDE_WIDTH)
 
 
 def test_durbin_watson_rows_agree_with_quad_reference_within_the_error_bound():
@@ -163,6 +166,13 @@ def test_rows_are_independent_of_batching_padding_and_scale():
     scaled = prob_quadform_below_zero(padded * 123.4)
     assert np.max(np.abs(batch - single)) < 1e-13
     assert np.max(np.abs(batch - scaled)) < 1e-12
+    # zeros anywhere in a row (rows of different widths in one call are integrated at their own
+    # width): the same as the row without its zeros
+    scattered = np.zeros((len(rows), 2 * width))
+    for i, lam in enumerate(rows):
+        slots = np.sort(rng.choice(2 * width, size=len(lam), replace=False))
+        scattered[i, slots] = lam
+    assert np.max(np.abs(prob_quadform_below_zero(scattered) - single)) < 1e-13
 
 
 def test_monte_carlo_agreement():

@@ -322,6 +322,48 @@ def test_diagnose_series_and_designs_give_the_per_group_rows_in_case_order(fixtu
     assert calls[-1] == (len(designs), len(designs))
 
 
+def test_stacks_run_side_by_side_equal_each_stack_run_alone(monkeypatch):
+    # diagnose_designs runs its stacks side by side (merged REML/ML searches per k, Newton
+    # searches and Imhof integrals across stacks); each stack run alone (diagnose_stack) must
+    # give the same rows: no row may depend on the rows it is merged with.  Degenerate rows
+    # (constant, missing value, rank-deficient design, no contrast) ride along.
+    import audit.stacked as S
+
+    series, designs, _ = _random_review(31, 90)
+    rng = np.random.default_rng(31)
+    n = 12
+    t = np.arange(n, dtype=float)
+    step = (t >= 6).astype(float)
+    X = np.column_stack([np.ones(n), t, step, (t - 6) * step])
+    extra = [(np.full(n, 2.0), _design(X, [0, 0, 1.0, 0])),
+             (np.r_[rng.normal(size=n - 1), np.nan], _design(X, [0, 0, 1.0, 0])),
+             (rng.normal(size=n), _design(np.column_stack([np.ones(n), t, step, step]), [0, 0, 1.0, 0])),
+             (rng.normal(size=n), _design(X, np.zeros(4), n_transitions=0))]
+    series = series + [e[0] for e in extra]
+    designs = designs + [e[1] for e in extra]
+    rho = rng.uniform(-0.5, 0.7, len(designs))
+    groups = stack_groups(designs)
+    assert len({k for (_, k) in groups}) >= 3 and len(groups) >= 20
+    merged = []
+    real_answer = dict(S._ANSWER)
+    for kind in real_answer:  # count the merged calls: fewer than one per stack
+        monkeypatch.setitem(S._ANSWER, kind, lambda p, _k=kind: merged.append(_k) or real_answer[_k](p))
+    for power_rho in (0.3, -0.4):
+        merged.clear()
+        together = diagnose_designs(series, designs, supplied_rho=rho, power_rho=power_rho)
+        assert 0 < merged.count("ar1") < len(groups) and merged.count("imhof") < 2 * len(groups)
+        alone = []
+        for idx in groups.values():
+            out = diagnose_stack(np.vstack([series[i] for i in idx]), np.stack([designs[i].X for i in idx]),
+                                 np.stack([designs[i].contrast for i in idx]), 0.05, rho[idx], power_rho,
+                                 models=[designs[i].model for i in idx],
+                                 n_transitions=[designs[i].n_transitions for i in idx])
+            alone.append(out.set_axis(idx))
+        alone = pd.concat(alone).sort_index().reset_index(drop=True)
+        errors = _assert_same(together, alone)
+        assert errors["ar1_reml_rho"] <= 1e-13 and errors["dw_power"] <= 1e-12
+
+
 def test_stack_groups_keys():
     _, designs, _ = _random_review(2, 30)
     groups = stack_groups(designs)
