@@ -679,14 +679,23 @@ def _ratio_quantile_newton(mu: np.ndarray, prob: np.ndarray) -> tuple[np.ndarray
 _METHODS = ("REML", "ML")
 
 
+_ENTRYWISE_MAX_K = 8  # _spd_inverse works entry by entry up to this k (LAPACK per matrix above)
+
+
 def _spd_inverse(M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Inverse and log-determinant of symmetric positive definite matrices (..., k, k).
 
-    Cholesky M = LL' (LAPACK), L^-1 row by row by forward substitution vectorised over the
-    stack (batched matrix products), M^-1 = L^-T L^-1, log|M| = 2 sum log L_jj; falls back
-    to inv/slogdet if M is not numerically positive definite.
+    Cholesky M = LL', M^-1 = L^-T L^-1, log|M| = 2 sum log L_jj; falls back to inv/slogdet if
+    M is not numerically positive definite.  For k <= ``_ENTRYWISE_MAX_K`` every step works
+    on one entry of all matrices at once (``_spd_inverse_entrywise``); above, Cholesky by
+    LAPACK and L^-1 row by row by batched matrix products.
     """
     k = M.shape[-1]
+    if 0 < k <= _ENTRYWISE_MAX_K:
+        out = _spd_inverse_entrywise(M.reshape(-1, k, k))
+        if out is None:
+            return np.linalg.inv(M), np.linalg.slogdet(M)[1]
+        return out[0].reshape(M.shape), out[1].reshape(M.shape[:-2])
     try:
         L = np.linalg.cholesky(M)
     except np.linalg.LinAlgError:
@@ -705,6 +714,47 @@ def _spd_inverse(M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     Minv = (Li.transpose(0, 2, 1) @ Li).reshape(M.shape)
     logdet = 2.0 * np.sum(np.log(diag), axis=1).reshape(M.shape[:-2])
     return Minv, logdet
+
+
+def _spd_inverse_entrywise(M: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """(M^-1, log|M|) of matrices M (m, k, k) by Cholesky, each entry of L, L^-1 and M^-1 a
+    vector over the m matrices (for small k much faster than one LAPACK call per matrix);
+    None when a pivot is not positive (M not numerically positive definite, or not finite)."""
+    m, k, _ = M.shape
+    L = [[None] * k for _ in range(k)]
+    for j in range(k):
+        d = M[:, j, j].copy()
+        for p_ in range(j):
+            d -= L[j][p_] * L[j][p_]
+        if not np.all(d > 0):
+            return None
+        L[j][j] = np.sqrt(d)
+        for i in range(j + 1, k):
+            acc = M[:, i, j].copy()
+            for p_ in range(j):
+                acc -= L[i][p_] * L[j][p_]
+            acc /= L[j][j]
+            L[i][j] = acc
+    Li = [[None] * k for _ in range(k)]  # L^-1, lower triangular
+    for i in range(k):
+        Li[i][i] = 1.0 / L[i][i]
+        for j in range(i):
+            acc = L[i][j] * Li[j][j]
+            for p_ in range(j + 1, i):
+                acc = acc + L[i][p_] * Li[p_][j]
+            Li[i][j] = -acc * Li[i][i]
+    Minv = np.empty((m, k, k))
+    for a in range(k):  # (L^-T L^-1)[a, b] = sum_{p >= a} L^-1[p, a] L^-1[p, b], b <= a
+        for b in range(a + 1):
+            acc = Li[a][a] * Li[a][b]
+            for p_ in range(a + 1, k):
+                acc = acc + Li[p_][a] * Li[p_][b]
+            Minv[:, a, b] = acc
+            Minv[:, b, a] = acc
+    logdet = np.log(L[0][0])
+    for j in range(1, k):
+        logdet = logdet + np.log(L[j][j])
+    return Minv, 2.0 * logdet
 
 
 class _AR1Rows:

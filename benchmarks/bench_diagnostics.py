@@ -56,7 +56,7 @@ def _cases_part(obs: pd.DataFrame) -> dict:
 # Work per case grows with its number of points plus a fixed part about as large as this many
 # points (diagnose_cases CPU time on review_20000: blocks of equal points but 13,139 and 6,861
 # cases cost 1.70 s and 1.48 s); blocks are balanced on points + this per case.
-CASE_COST_IN_POINTS = 8
+CASE_COST_IN_POINTS = 0
 # A cut goes to a length boundary when one lies within this share of a block's work of the
 # equal share; otherwise (few lengths with many cases each) to the nearest case boundary.
 CUT_SLACK = 0.1

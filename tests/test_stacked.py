@@ -412,3 +412,25 @@ def test_stack_columns_match_statsmodels(fixture_obs):
         # source: numpy lag-1 autocorrelation of the residuals, sum e_t e_t+1 / sum e_t^2
         e = fit.resid
         assert row["r1_residual"] == pytest.approx(float(e[1:] @ e[:-1] / (e @ e)), rel=1e-9)
+
+
+@pytest.mark.parametrize("k", [1, 2, 4, 8, 9])
+def test_spd_inverse_matches_numpy_inverse_and_log_determinant(k):
+    # source: numpy.linalg.inv and slogdet (LAPACK); entry by entry up to k = 8, LAPACK above
+    from audit.stacked import _spd_inverse
+
+    rng = np.random.default_rng(k)
+    A = rng.normal(size=(300, k, k))
+    M = A @ A.transpose(0, 2, 1) + 0.1 * np.eye(k)
+    Minv, logdet = _spd_inverse(M)
+    np.testing.assert_allclose(Minv, np.linalg.inv(M), rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(logdet, np.linalg.slogdet(M)[1], rtol=1e-12, atol=1e-12)
+    # one matrix not positive definite (or not finite): every matrix by inv / slogdet
+    bad = M.copy()
+    bad[7] = -np.eye(k)
+    bad[9, 0, 0] = np.nan
+    with np.errstate(all="ignore"):  # as its callers run it
+        Minv_b, logdet_b = _spd_inverse(bad)
+    np.testing.assert_allclose(Minv_b[7], -np.eye(k))
+    assert np.all(np.isnan(Minv_b[9])) or not np.all(np.isfinite(Minv_b[9]))
+    np.testing.assert_allclose(Minv_b[:7], np.linalg.inv(M[:7]), rtol=1e-9, atol=1e-9)
