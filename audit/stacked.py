@@ -1059,9 +1059,11 @@ def _stack_columns_many(stacks: Sequence[tuple]) -> list[dict]:
 
 
 # Requests of _stack_steps, answered in this order (a stack that skips one waits for the others):
-# ("ar1", k, (rows, du, designs)) -> _ar1_fit's dict; ("quantile", (p, target), mu) -> (c, dens,
-# converged) of _ratio_quantile_newton; ("imhof", width, lam) -> P(Q < 0) per row.
-_REQUEST_ORDER = ("ar1", "quantile", "imhof")
+# ("ar1", k, (rows, du, designs)) -> _ar1_fit's dict; ("light", (n, k0), distinct session-only
+# designs) -> (_Designs(light=True) of the distinct designs of all such requests, the position
+# there of each design of the request); ("quantile", (p, target), mu) -> (c, dens, converged) of
+# _ratio_quantile_newton; ("imhof", width, lam) -> P(Q < 0) per row.
+_REQUEST_ORDER = ("ar1", "light", "quantile", "imhof")
 
 
 def _run_side_by_side(steps: list) -> list:
@@ -1123,6 +1125,16 @@ class _StackedMatrices:
         self.A1, self.A2 = A1, A2
 
 
+def _answer_light(payloads: list) -> list:
+    """The session-only designs of several stacks of one n (stacks of other k share them) as
+    one _Designs of their distinct designs, and where each stack's designs are in it."""
+    if len(payloads) == 1:
+        return [(_Designs(payloads[0], light=True), np.arange(payloads[0].shape[0]))]
+    first, inverse = _unique_rows(np.concatenate(payloads))
+    shared = _Designs(np.concatenate(payloads)[first], light=True)
+    return [(shared, part) for part in _split_rows(inverse, [p_.shape[0] for p_ in payloads])]
+
+
 def _answer_quantile(payloads: list) -> list:
     """_ratio_quantile_newton on the null eigenvalue rows of several stacks (same width and
     target) in one call."""
@@ -1136,7 +1148,7 @@ def _answer_imhof(payloads: list) -> list:
     return _split_rows(prob_quadform_below_zero(np.vstack(payloads)), [p_.shape[0] for p_ in payloads])
 
 
-_ANSWER = {"ar1": _answer_ar1, "quantile": _answer_quantile, "imhof": _answer_imhof}
+_ANSWER = {"ar1": _answer_ar1, "light": _answer_light, "quantile": _answer_quantile, "imhof": _answer_imhof}
 
 
 def _stack_steps(Y, X, C, alpha, supplied_rho, power_rho, models, n_transitions):
@@ -1285,7 +1297,8 @@ def _stack_steps(Y, X, C, alpha, supplied_rho, power_rho, models, n_transitions)
     k0 = min(2, k)
     X0 = X[:, :, :k0]
     first0, du0 = _unique_rows(X0)
-    des0 = _Designs(X0[first0], light=True)
+    des0, to_shared = yield ("light", (n, k0), X0[first0])
+    du0 = to_shared[du0]
     Q0r = des0.Q[du0]
     E0 = Yf - np.einsum("mnk,mk->mn", Q0r, np.einsum("mnk,mn->mk", Q0r, Yf))
     pin0 = np.isin(du0, des0.pinv_rows)

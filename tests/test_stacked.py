@@ -352,6 +352,7 @@ def test_stacks_run_side_by_side_equal_each_stack_run_alone(monkeypatch):
         merged.clear()
         together = diagnose_designs(series, designs, supplied_rho=rho, power_rho=power_rho)
         assert 0 < merged.count("ar1") < len(groups) and merged.count("imhof") < 2 * len(groups)
+        assert merged.count("light") == len({n for (n, _) in groups}) < len(groups)
         alone = []
         for idx in groups.values():
             out = diagnose_stack(np.vstack([series[i] for i in idx]), np.stack([designs[i].X for i in idx]),
