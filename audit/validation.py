@@ -535,9 +535,9 @@ def validate_in_slices(df: pd.DataFrame, schema) -> pd.DataFrame:
     n = len(df)
     if n <= _VALIDATE_CHUNK_ROWS or "case_key" not in df.columns:
         return schema.validate(df, lazy=True)
-    keys = df["case_key"].to_numpy()
+    keys, distinct = pd.factorize(df["case_key"])  # codes (no Python string per row)
     starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]])
-    if len(starts) != len(pd.unique(keys)):  # a case in several places: validate whole
+    if len(starts) != len(distinct) + int((keys < 0).any()):  # a case in several places: validate whole
         return schema.validate(df, lazy=True)
     cuts = [0]
     for start in starts[1:]:

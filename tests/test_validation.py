@@ -230,3 +230,25 @@ def test_outgoing_tables_validated_in_slices_of_whole_cases(tmp_path, monkeypatc
     bad.loc[bad.index[-1], "session"] = bad.loc[bad["case_key"] == last, "session"].iloc[0]
     with pytest.raises(pa.errors.SchemaErrors):
         V.validate_in_slices(bad, Observations)
+    # slices only when every case is in one place; a case whose rows are in two places is
+    # validated whole (its per-case rules need all its rows in one call)
+    calls = []
+
+    class Recording:
+        @staticmethod
+        def validate(df, lazy):
+            calls.append(len(df))
+            return df
+
+        @staticmethod
+        def to_schema():
+            return Observations.to_schema()
+
+    obs = whole.observations
+    V.validate_in_slices(obs, Recording)
+    assert len(calls) > 1 and sum(calls) == len(obs)
+    calls.clear()
+    first = obs["case_key"].iloc[0]
+    split = pd.concat([obs, obs[obs["case_key"] == first].iloc[[-1]]], ignore_index=True)
+    V.validate_in_slices(split, Recording)
+    assert calls == [len(split)]
