@@ -53,9 +53,11 @@ def _cases_part(obs: pd.DataFrame) -> dict:
     return diagnose_cases(obs)
 
 
-# Work per case grows with its number of points plus a fixed part about as large as this many
-# points (diagnose_cases CPU time on review_20000: blocks of equal points but 13,139 and 6,861
-# cases cost 1.70 s and 1.48 s); blocks are balanced on points + this per case.
+# Work per case: its number of points plus this many points for the case itself.  Since stacks
+# run side by side (audit.stacked._stack_columns_many) the engine's time is about proportional
+# to the points (diagnose_cases CPU time on review_20000, cases grouped by length 8-12, ...,
+# 37-40: 5.7 to 7.9 us per point, no trend with length; blocks balanced with 8 per case cost
+# 1.25 s for 12,527 short cases and 1.45 s for 7,473 long ones), so blocks are balanced on points.
 CASE_COST_IN_POINTS = 0
 # A cut goes to a length boundary when one lies within this share of a block's work of the
 # equal share; otherwise (few lengths with many cases each) to the nearest case boundary.
@@ -133,6 +135,24 @@ def _blocks(arrays: dict, parts: int) -> list[dict]:
     return out
 
 
+def design_shapes(obs: pd.DataFrame) -> list[tuple[int, int]]:
+    """The (n, k) of every case model of the input (``audit.stacked.case_design_stacks``)."""
+    from audit.stacked import case_design_stacks
+
+    a = flat_arrays(obs)
+    return sorted({X.shape[1:] for _, _, X, *_ in case_design_stacks(
+        a["session"], a["phase_index"], a["condition"], a["design"], a["phase_label"], a["case_starts"])})
+
+
+def warm_caches(shapes: list[tuple[int, int]], alpha: float = 0.05) -> None:
+    """Fill this process's cache of Durbin-Watson bounds for every (n, k) (worker initializer):
+    the pool gives blocks to whichever worker is free, so each worker warms all of them."""
+    from audit.durbin_watson import critical_bounds
+
+    for n, k in shapes:
+        critical_bounds(n, k - 1, alpha)
+
+
 def run_engine(obs, engine: str, pool=None, workers: int = 1) -> tuple[int, float, dict]:
     """Diagnose every case of ``obs``; returns (cases, seconds, parts in seconds)."""
     if engine == "diagnose_cases":
@@ -193,10 +213,13 @@ def main(argv=None) -> None:
     print(f"input {args.path}: {n_cases} cases, {len(obs)} observations (loaded in {t_load.seconds:.1f} s, "
           f"not timed); baseline on {n_base} of them")
 
+    shapes = design_shapes(obs)
     pool = None
     if args.workers > 1 and args.engine in ("series", "diagnose_cases"):
-        pool = ProcessPoolExecutor(args.workers, mp_context=multiprocessing.get_context("fork"))
+        pool = ProcessPoolExecutor(args.workers, mp_context=multiprocessing.get_context("fork"),
+                                   initializer=warm_caches, initargs=(shapes,))
     # warm-up (imports, caches such as the DW bounds, worker start), not timed
+    warm_caches(shapes)
     run_engine(take_cases(obs, 50), args.engine, pool, args.workers)
     baseline_loop(take_cases(obs, 5))
 

@@ -84,3 +84,24 @@ def test_engine_on_blocks_equals_engine_on_whole_input():
 @pytest.mark.parametrize("parts", [1, 2])
 def test_empty_input_gives_no_blocks(parts):
     assert bench.case_block_rows(_frame([]), parts) == []
+
+
+def test_warm_up_covers_the_shape_of_every_case_model():
+    # the workers' Durbin-Watson bounds are filled for every (n, k) the engine will ask for:
+    # the shapes are those of audit.design.case_design case by case
+    from audit.design import case_design
+    from audit.durbin_watson import _critical_bounds_cached
+
+    obs = load_review([FIXTURE], AuditConfig()).prepared.observations
+    expected = set()
+    for _, part in obs.groupby("case_key", sort=True, observed=True):
+        d = case_design(part["session"].to_numpy(float), part["phase_index"].to_numpy(),
+                        part["condition"].to_numpy().astype(str), str(part["design"].iloc[0]),
+                        part["phase"].to_numpy().astype(str))
+        expected.add(d.X.shape)
+    shapes = bench.design_shapes(obs)
+    assert set(shapes) == expected
+    _critical_bounds_cached.cache_clear()
+    bench.warm_caches(shapes)
+    filled = _critical_bounds_cached.cache_info().currsize
+    assert filled == len({(n, k - 1) for n, k in shapes})
