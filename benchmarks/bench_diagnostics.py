@@ -57,7 +57,8 @@ def _cases_part(obs: pd.DataFrame) -> dict:
 # run side by side (audit.stacked._stack_columns_many) the engine's time is about proportional
 # to the points (diagnose_cases CPU time on review_20000, cases grouped by length 8-12, ...,
 # 37-40: 5.7 to 7.9 us per point, no trend with length; blocks balanced with 8 per case cost
-# 1.25 s for 12,527 short cases and 1.45 s for 7,473 long ones), so blocks are balanced on points.
+# 1.29 s for 12,527 short cases and 1.45 s for 7,473 long ones, medians of 6), so blocks are
+# balanced on points.
 CASE_COST_IN_POINTS = 0
 # A cut goes to a length boundary when one lies within this share of a block's work of the
 # equal share; otherwise (few lengths with many cases each) to the nearest case boundary.
