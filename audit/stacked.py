@@ -56,6 +56,9 @@ DEFAULT_POWER_RHO = 0.3
 CASE_BLOCK = 50_000  # cases whose designs are built together in diagnose_series (bounds memory)
 STACK_ROWS = 1024  # rows per diagnose_stack call in diagnose_series / diagnose_designs (bounds memory)
 SIDE_BY_SIDE_ROWS = 8192  # cases whose stacks run side by side (_stack_columns_many; bounds memory)
+# ... and at most this many cases x points^2 (the largest per-design arrays, such as the bases of
+# the residual space and the DW null matrices, hold about n^2 numbers per case)
+SIDE_BY_SIDE_CELLS = 1_000_000
 
 # Same thresholds as the per-case modules (audit.durbin_watson, audit.diagnose).
 _DW_RANK_RTOL = 1e-10  # smallest/largest singular value below this: no DW null distribution
@@ -167,7 +170,8 @@ def diagnose_series(session, outcome, phase_index, condition, design, phase_labe
 
 class _SideBySide:
     """Stacks collected for ``_stack_columns_many`` and run once they hold ``SIDE_BY_SIDE_ROWS``
-    cases (bounds memory); progress after each run; ``frame`` gives the rows in case order."""
+    cases or ``SIDE_BY_SIDE_CELLS`` cases x points^2 (bounds memory); progress after each run;
+    ``frame`` gives the rows in case order."""
 
     def __init__(self, progress: ProgressFn | None, total: int):
         self.progress, self.total = progress, total
@@ -175,12 +179,15 @@ class _SideBySide:
         self.where: list[np.ndarray] = []
         self.waiting: list[tuple] = []
         self.waiting_rows = 0
+        self.waiting_cells = 0
         self.done = 0
 
     def add(self, idx: np.ndarray, args: tuple) -> None:
+        """Add a stack (``_stack_columns`` arguments, Y first); run the waiting stacks when full."""
         self.waiting.append((np.asarray(idx), args))
         self.waiting_rows += len(idx)
-        if self.waiting_rows >= SIDE_BY_SIDE_ROWS:
+        self.waiting_cells += len(idx) * args[0].shape[1] ** 2
+        if self.waiting_rows >= SIDE_BY_SIDE_ROWS or self.waiting_cells >= SIDE_BY_SIDE_CELLS:
             self.run()
 
     def run(self) -> None:
@@ -189,7 +196,7 @@ class _SideBySide:
         self.parts.extend(_stack_columns_many([args for _, args in self.waiting]))
         self.where.extend(idx for idx, _ in self.waiting)
         self.done += self.waiting_rows
-        self.waiting, self.waiting_rows = [], 0
+        self.waiting, self.waiting_rows, self.waiting_cells = [], 0, 0
         if self.progress:
             self.progress(self.done, self.total)
 

@@ -363,6 +363,14 @@ def test_stacks_run_side_by_side_equal_each_stack_run_alone(monkeypatch):
         alone = pd.concat(alone).sort_index().reset_index(drop=True)
         errors = _assert_same(together, alone)
         assert errors["ar1_reml_rho"] <= 1e-13 and errors["dw_power"] <= 1e-12
+    # a memory bound that cuts the stacks into several side-by-side runs: the same rows, and
+    # progress after each run
+    monkeypatch.setattr(S, "SIDE_BY_SIDE_CELLS", 8_000)
+    calls = []
+    cut = diagnose_designs(series, designs, supplied_rho=rho, power_rho=-0.4,
+                           progress=lambda done, total: calls.append(done))
+    _assert_same(cut, together)
+    assert len(calls) > 3 and calls == sorted(calls) and calls[-1] == len(designs)
 
 
 def test_stack_groups_keys():
