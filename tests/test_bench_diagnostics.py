@@ -52,14 +52,14 @@ def test_blocks_cover_every_row_once_with_whole_cases_in_input_order():
             assert not (seen[i] & seen[j])  # a case lies in one block only
 
 
-def test_cuts_fall_between_case_lengths():
+def test_blocks_hold_cases_in_length_order_and_equal_work():
     rng = np.random.default_rng(4)
     obs = _frame(rng.permutation(np.repeat(np.arange(8, 41), 20)).tolist())
     b0, b1 = bench.case_block_rows(obs, 2)
     short, long_ = _lengths_of(obs, b0), _lengths_of(obs, b1)
-    assert max(short) < min(long_)  # each length wholly in one block
+    assert max(short) <= min(long_)  # shorter cases first; at most the length cut through is shared
     work = [len(b) + bench.CASE_COST_IN_POINTS * obs["case_key"].iloc[b].nunique() for b in (b0, b1)]
-    assert abs(work[0] - work[1]) <= 0.05 * sum(work)
+    assert abs(work[0] - work[1]) <= 40 + bench.CASE_COST_IN_POINTS  # within one case of equal
 
 
 def test_one_length_only_still_gives_two_blocks():
