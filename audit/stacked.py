@@ -723,25 +723,40 @@ def _spd_inverse(M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return Minv, logdet
 
 
-def _spd_inverse_entrywise(M: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
-    """(M^-1, log|M|) of matrices M (m, k, k) by Cholesky, each entry of L, L^-1 and M^-1 a
-    vector over the m matrices (for small k much faster than one LAPACK call per matrix);
-    None when a pivot is not positive (M not numerically positive definite, or not finite)."""
-    m, k, _ = M.shape
+def _cholesky_entries(entry: Callable[[int, int], np.ndarray], k: int):
+    """Cholesky factors of many k x k matrices at once, one entry at a time: ``entry(i, j)``
+    gives the (i, j) entries (i >= j) of all matrices as an array; returns (L, log|M|) with
+    L[i][j] the array of the (i, j) entries of the factors, or None when a pivot is not
+    positive (not numerically positive definite, or not finite).  For small k much faster
+    than one LAPACK call per matrix."""
     L = [[None] * k for _ in range(k)]
     for j in range(k):
-        d = M[:, j, j].copy()
+        d = np.array(entry(j, j), dtype=float)
         for p_ in range(j):
             d -= L[j][p_] * L[j][p_]
         if not np.all(d > 0):
             return None
         L[j][j] = np.sqrt(d)
         for i in range(j + 1, k):
-            acc = M[:, i, j].copy()
+            acc = np.array(entry(i, j), dtype=float)
             for p_ in range(j):
                 acc -= L[i][p_] * L[j][p_]
             acc /= L[j][j]
             L[i][j] = acc
+    logdet = np.log(L[0][0])
+    for j in range(1, k):
+        logdet = logdet + np.log(L[j][j])
+    return L, 2.0 * logdet
+
+
+def _spd_inverse_entrywise(M: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """(M^-1, log|M|) of matrices M (m, k, k) by ``_cholesky_entries``, each entry of L^-1 and
+    M^-1 a vector over the m matrices; None when M is not numerically positive definite."""
+    m, k, _ = M.shape
+    factors = _cholesky_entries(lambda i, j: M[:, i, j], k)
+    if factors is None:
+        return None
+    L, logdet = factors
     Li = [[None] * k for _ in range(k)]  # L^-1, lower triangular
     for i in range(k):
         Li[i][i] = 1.0 / L[i][i]
@@ -758,10 +773,7 @@ def _spd_inverse_entrywise(M: np.ndarray) -> tuple[np.ndarray, np.ndarray] | Non
                 acc = acc + Li[p_][a] * Li[p_][b]
             Minv[:, a, b] = acc
             Minv[:, b, a] = acc
-    logdet = np.log(L[0][0])
-    for j in range(1, k):
-        logdet = logdet + np.log(L[j][j])
-    return Minv, 2.0 * logdet
+    return Minv, logdet
 
 
 class _AR1Rows:
@@ -826,26 +838,17 @@ def _grid_cholesky(A1: np.ndarray, A2: np.ndarray):
     g = _GRID
     g2 = g**2
     k = A1.shape[-1]
-    L = [[None] * k for _ in range(k)]
-    for j in range(k):
-        d = 1.0 - g * A1[:, j, j, None] + g2 * A2[:, j, j, None]
-        for p_ in range(j):
-            d -= L[j][p_] * L[j][p_]
-        if not np.all(d > 0):
-            break
-        ljj = np.sqrt(d)
-        L[j][j] = ljj
-        for i in range(j + 1, k):
-            acc = -g * A1[:, i, j, None] + g2 * A2[:, i, j, None]
-            for p_ in range(j):
-                acc -= L[i][p_] * L[j][p_]
-            acc /= ljj
-            L[i][j] = acc
-    else:
-        logdet = np.zeros((A1.shape[0], g.size))
-        for j in range(k):
-            logdet += np.log(L[j][j])
-        return L, 2.0 * logdet, True
+
+    def entry(i: int, j: int) -> np.ndarray:
+        if i == j:
+            return 1.0 - g * A1[:, j, j, None] + g2 * A2[:, j, j, None]
+        return -g * A1[:, i, j, None] + g2 * A2[:, i, j, None]
+
+    if k == 0:
+        return [], np.zeros((A1.shape[0], g.size)), True
+    factors = _cholesky_entries(entry, k)
+    if factors is not None:
+        return factors[0], factors[1], True
     # not numerically positive definite: symmetric square root
     Mxx = np.eye(k) - g[None, :, None, None] * A1[:, None] + g2[None, :, None, None] * A2[:, None]
     w, v = np.linalg.eigh(Mxx)
