@@ -362,8 +362,10 @@ def _flip_cases(cases: pd.DataFrame, shrink: pd.DataFrame | None) -> pd.DataFram
 
 
 def build_report_html(tables: dict[str, pd.DataFrame], cases: pd.DataFrame, observations: pd.DataFrame | None,
-                      quarantine: pd.DataFrame | None, adjustments: pd.DataFrame | None, run_info: dict) -> str:
-    """The report as one HTML string (see module docstring)."""
+                      quarantine: pd.DataFrame | None, adjustments: pd.DataFrame | None, run_info: dict,
+                      drawn: tuple[pd.DataFrame, str] | None = None) -> str:
+    """The report as one HTML string (see module docstring). ``drawn``: the cases to draw and their
+    note when the caller has chosen them already (``_cases_to_draw``), else they are chosen here."""
     overall = tables["summary_overall"].iloc[0]
     pooled = tables["summary_pooled_autocorrelation"]
     shrink = tables.get("summary_case_shrinkage")
@@ -522,7 +524,7 @@ def build_report_html(tables: dict[str, pd.DataFrame], cases: pd.DataFrame, obse
             "black line: OLS fit of the case model; vermillion dashed line: GLS fit with the case's REML AR(1). "
             "Under each graph: the Durbin-Watson zone in words, the exact p-value for positive dependence, "
             "and the AR(1) estimates.</p>")
-        drawn, graph_note = _cases_to_draw(cases, verdicts)
+        drawn, graph_note = drawn if drawn is not None else _cases_to_draw(cases, verdicts)
         if graph_note:
             add(f"<p>{_e(graph_note)}</p>")
         obs_drawn = observations[observations["case_key"].astype(str).isin(set(drawn["case_key"].astype(str)))]
@@ -650,10 +652,11 @@ def write_report(store_path, out_path=None, run: str = "latest") -> Path:
     if set(SUMMARY_TABLES) - {"summary_notes"} <= names:
         tables = {n: _read_optional(store, n, run_id) for n in SUMMARY_TABLES if n in names}
         # only the observations of the cases drawn (memory: a large review's table is not read whole)
-        drawn, _ = _cases_to_draw(cases, tables.get("summary_study_verdicts"))
+        drawn = _cases_to_draw(cases, tables.get("summary_study_verdicts"))
         observations = _read_optional(store, "observations", run_id,
-                                      case_key=sorted(set(drawn["case_key"].astype(str))))
+                                      case_key=sorted(set(drawn[0]["case_key"].astype(str))))
     else:
+        drawn = None  # chosen from the summary computed below
         observations = _read_optional(store, "observations", run_id)
         accepted = None
         for name in ("accepted_cases", "accepted", "cases_accepted"):
@@ -663,7 +666,7 @@ def write_report(store_path, out_path=None, run: str = "latest") -> Path:
         params = info.get("parameters") or {}
         alpha = float(params.get("alpha", 0.05)) if isinstance(params, dict) else 0.05
         tables = summarize(cases, alpha, quarantine=quarantine, accepted_cases=accepted, observations=observations)
-    text = build_report_html(tables, cases, observations, quarantine, adjustments, info)
+    text = build_report_html(tables, cases, observations, quarantine, adjustments, info, drawn=drawn)
     out = Path(out_path) if out_path is not None else Path(store_path) / f"sced-audit-report-{run_id}.html"
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = out.with_name(out.name + ".tmp")
