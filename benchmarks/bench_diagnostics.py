@@ -53,30 +53,18 @@ def _cases_part(obs: pd.DataFrame) -> dict:
     return diagnose_cases(obs)
 
 
-# Work per case: its number of points plus this many points for the case itself.  Since stacks
-# run side by side (audit.stacked._stack_columns_many) the engine's time is about proportional
-# to the points (diagnose_cases CPU time on review_20000, cases grouped by length 8-12, ...,
-# 37-40: 5.7 to 7.9 us per point, no trend with length; blocks balanced with 8 per case cost
-# 1.29 s for 12,527 short cases and 1.45 s for 7,473 long ones, medians of 6), so blocks are
-# balanced on points.
-CASE_COST_IN_POINTS = 0
-# A cut goes to a length boundary when one lies within this share of a block's work of the
-# equal share; otherwise to the nearest case boundary.  0: always the nearest case boundary.
-# (One length holds about 500 cases at 20,000, about 0.1 s of work: cutting only between
-# lengths left one worker up to that much longer than the other.)
-CUT_SLACK = 0.0
-
-
 def case_block_rows(obs: pd.DataFrame, parts: int) -> list[np.ndarray]:
-    """Row positions of ``parts`` blocks of whole cases of about equal work.
+    """Row positions of ``parts`` blocks of whole cases of about equal numbers of points.
 
     Cases are ordered by their number of points, then by first appearance (as
-    ``audit.rerun.case_batch_rows`` orders them) to choose the blocks; each block's rows stay in
-    input order. Each cut is placed at the length boundary nearest to an equal share of the
-    work (points + ``CASE_COST_IN_POINTS`` per case) when one lies within ``CUT_SLACK`` of a
-    block's work of it (all cases of one length, which share their design algebra, then fall in
-    one block), otherwise between the two cases nearest to it (the default: equal work matters
-    more than the little design algebra the two blocks then share).
+    ``audit.rerun.case_batch_rows`` orders them); each cut falls between the two cases nearest
+    to an equal share of the points, and each block's rows stay in input order.  Points measure
+    the work: since stacks run side by side (audit.stacked._stack_columns_many) the engine's
+    time is about proportional to them (diagnose_cases CPU time on review_20000, cases grouped
+    by length 8-12, ..., 37-40: 5.7 to 7.9 us per point, no trend with length).  Cuts are not
+    held to length boundaries: one length holds about 500 cases at 20,000 (about 0.1 s of
+    work), and blocks cut only between lengths (balanced on points + 8 per case) cost 1.29 s for
+    12,527 short cases and 1.45 s for 7,473 long ones (medians of 6).
     """
     if obs.empty:
         return []
@@ -86,17 +74,10 @@ def case_block_rows(obs: pd.DataFrame, parts: int) -> list[np.ndarray]:
     rank = np.empty(sizes.size, dtype=np.int64)
     rank[by_size] = np.arange(sizes.size)
     rows = np.argsort(rank[codes], kind="stable")  # rows case by case in that order
-    sorted_sizes = sizes[by_size]
-    row_ends = np.cumsum(sorted_sizes)  # rows up to and including each case
-    work_ends = np.cumsum(sorted_sizes + CASE_COST_IN_POINTS)
-    last_of_length = np.flatnonzero(np.r_[sorted_sizes[1:] != sorted_sizes[:-1], True])
-    slack = CUT_SLACK * work_ends[-1] / parts
+    row_ends = np.cumsum(sizes[by_size])  # rows up to and including each case
     cuts = [0]
     for i in range(1, parts):
-        target = work_ends[-1] * i / parts
-        j = last_of_length[int(np.argmin(np.abs(work_ends[last_of_length] - target)))]
-        if abs(work_ends[j] - target) > slack:  # few, large lengths: cut between two cases instead
-            j = int(np.argmin(np.abs(work_ends - target)))
+        j = int(np.argmin(np.abs(row_ends - row_ends[-1] * i / parts)))
         cuts.append(max(int(row_ends[j]), cuts[-1]))
     cuts.append(rows.size)
     # within a block the rows keep their input order (clean observations come sorted by case
