@@ -1060,8 +1060,8 @@ def _stack_columns_many(stacks: Sequence[tuple]) -> list[dict]:
     Each stack's computation (``_stack_steps``) stops where it needs one of the pieces that
     cost about as much for a few rows as for many (the REML/ML search, the session-only
     designs, the Newton search of the power's critical values, the error-controlled Imhof
-    integrals); ``_run_side_by_side``
-    collects those requests of all stacks, answers them in merged calls and resumes the stacks.
+    integrals); ``_run_side_by_side`` collects those requests of all stacks, answers them in
+    merged calls and resumes the stacks.
     Every row's values are computed from its own inputs only, so the result of a stack does
     not depend on the stacks it runs beside (up to the last bits of sums).
     """
