@@ -191,9 +191,8 @@ def test_power_at_negative_and_zero_rho_equals_per_group_path(power_rho):
     _stack_and_compare(series, designs, power_rho=power_rho, alpha=0.1)
 
 
-@pytest.mark.filterwarnings("error")
-def test_degenerate_rows_mixed_into_stacks_give_the_same_nan_and_reasons():
-    rng = np.random.default_rng(3)
+def _degenerate_rows(rng) -> list[tuple[np.ndarray, CaseDesign]]:
+    """Invented cases of 12 points (one ordinary case first) with degenerate data or designs."""
     n = 12
     t = np.arange(n, dtype=float)
     step = (t >= 6).astype(float)
@@ -217,6 +216,12 @@ def test_degenerate_rows_mixed_into_stacks_give_the_same_nan_and_reasons():
         ((rng.normal(size=n) + t) * 1e-300, normal),
         (np.where(t % 2 == 0, 1.0, -1.0) * np.finfo(float).max, normal),
     ]
+    return rows
+
+
+@pytest.mark.filterwarnings("error")
+def test_degenerate_rows_mixed_into_stacks_give_the_same_nan_and_reasons():
+    rows = _degenerate_rows(np.random.default_rng(3))
     Y = [r[0] for r in rows]
     designs = [r[1] for r in rows]
     rho = np.array([0.2, 0.2, 0.2, 0.2, 0.2, 0.2, np.nan, 0.2, 0.2, 0.2])
@@ -326,19 +331,13 @@ def test_stacks_run_side_by_side_equal_each_stack_run_alone(monkeypatch):
     # diagnose_designs runs its stacks side by side (merged REML/ML searches per k, Newton
     # searches and Imhof integrals across stacks); each stack run alone (diagnose_stack) must
     # give the same rows: no row may depend on the rows it is merged with.  Degenerate rows
-    # (constant, missing value, rank-deficient design, no contrast) ride along.
+    # (constant, exact fit, missing value, rank-deficient design, no contrast, near the float
+    # limits) ride along.
     import audit.stacked as S
 
     series, designs, _ = _random_review(31, 90)
     rng = np.random.default_rng(31)
-    n = 12
-    t = np.arange(n, dtype=float)
-    step = (t >= 6).astype(float)
-    X = np.column_stack([np.ones(n), t, step, (t - 6) * step])
-    extra = [(np.full(n, 2.0), _design(X, [0, 0, 1.0, 0])),
-             (np.r_[rng.normal(size=n - 1), np.nan], _design(X, [0, 0, 1.0, 0])),
-             (rng.normal(size=n), _design(np.column_stack([np.ones(n), t, step, step]), [0, 0, 1.0, 0])),
-             (rng.normal(size=n), _design(X, np.zeros(4), n_transitions=0))]
+    extra = _degenerate_rows(rng)
     series = series + [e[0] for e in extra]
     designs = designs + [e[1] for e in extra]
     rho = rng.uniform(-0.5, 0.7, len(designs))
