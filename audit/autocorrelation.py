@@ -92,6 +92,8 @@ def residual_lag1_null_moments(X) -> tuple[float, float]:
     p = n - k
     trA = float(np.trace(A))
     mean = trA / p
+    if p == 1:  # r1 is fixed by the design (rounding would leave a variance of about 1e-17)
+        return mean, 0.0
     second = (2.0 * float(np.sum(A * A)) + trA**2) / (p * (p + 2.0))
     return mean, max(second - mean**2, 0.0)
 
