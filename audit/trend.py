@@ -173,11 +173,13 @@ def ols_slope(x, y) -> OLSSlope:
     ey, ys = _scaled(y)
     xm, ym = xs.mean(), ys.mean()
     xc = xs - xm
-    sxx = float(xc @ xc)
+    # sums of products as the batch path forms them (np.sum of the products, not a BLAS dot,
+    # whose rounding differs: an exactly zero slope must stay zero in both)
+    sxx = float(np.sum(xc * xc))
     if not sxx > 0:
         return OLSSlope(n, _NAN, _NAN, _NAN, _NAN, _NAN, _NAN, R.SINGULAR_DESIGN)
     yc = ys - ym
-    b = float(xc @ yc) / sxx  # slope * 2**(ex - ey)
+    b = float(np.sum(xc * yc)) / sxx  # slope * 2**(ex - ey)
     slope, bad_slope = unscale_checked(b, ey - ex)
     intercept, bad_intercept = unscale_checked(float(ym - b * xm), ey)
     overflow = R.NUMERICAL_FAILURE if (bad_slope or bad_intercept) else R.OK
@@ -185,8 +187,8 @@ def ols_slope(x, y) -> OLSSlope:
     if df < 1:
         return OLSSlope(n, slope, intercept, _NAN, _NAN, float(df), _NAN, R.join(R.NO_RESIDUAL_DF, overflow))
     resid = yc - b * xc
-    ssr = float(resid @ resid)
-    sst = float(yc @ yc)
+    ssr = float(np.sum(resid * resid))
+    sst = float(np.sum(yc * yc))
     if ssr <= 1e-20 * sst or sst == 0.0:
         code = R.join(R.ZERO_RESIDUAL_VARIANCE, R.CONSTANT_SERIES if sst == 0.0 else "", overflow)
         return OLSSlope(n, slope, intercept, 0.0, _NAN, float(df), _NAN, code)
