@@ -65,10 +65,10 @@ def input_bytes(files) -> int:
     return total
 
 
-def _diagnose(observations: pd.DataFrame, alpha: float) -> dict[str, pd.DataFrame]:
+def _diagnose(observations: pd.DataFrame, alpha: float, spill_to: str | None = None):
     from audit.rerun import diagnose_batch
 
-    return diagnose_batch(observations, alpha)
+    return diagnose_batch(observations, alpha, spill_to=spill_to)
 
 
 def _ready() -> int:
@@ -173,24 +173,25 @@ class DiagnosePool:
                         self._executor.submit(_ready)
         return self
 
-    def submit(self, observations: pd.DataFrame, alpha: float) -> Future:
-        """A Future of the batch's diagnostics tables."""
+    def submit(self, observations: pd.DataFrame, alpha: float, spill_to: str | None = None) -> Future:
+        """A Future of the batch's diagnostics tables (with ``spill_to``: written there by the
+        worker, see :mod:`audit.spill`, and a handle to them)."""
         if self.uses_processes:
             self.start()
             try:
                 with self._start_lock, _main_script_hidden():  # a submit may launch a worker process
-                    inner = self._executor.submit(_diagnose, observations, alpha)
+                    inner = self._executor.submit(_diagnose, observations, alpha, spill_to)
             except (BrokenProcessPool, RuntimeError) as exc:
                 self._fall_back(exc)
             else:
-                return self._guarded(inner, observations, alpha)
-        return self._inline(observations, alpha)
+                return self._guarded(inner, observations, alpha, spill_to)
+        return self._inline(observations, alpha, spill_to)
 
-    def run(self, observations: pd.DataFrame, alpha: float) -> dict[str, pd.DataFrame]:
+    def run(self, observations: pd.DataFrame, alpha: float, spill_to: str | None = None):
         """The batch's diagnostics tables (blocking)."""
-        return self.submit(observations, alpha).result()
+        return self.submit(observations, alpha, spill_to).result()
 
-    def _guarded(self, inner: Future, observations: pd.DataFrame, alpha: float) -> Future:
+    def _guarded(self, inner: Future, observations: pd.DataFrame, alpha: float, spill_to: str | None) -> Future:
         """``inner``, or the in-process result when its worker died."""
         outer: Future = Future()
 
@@ -200,7 +201,7 @@ class DiagnosePool:
             except BrokenProcessPool as exc:
                 self._fall_back(exc)
                 try:
-                    outer.set_result(self._inline(observations, alpha).result())
+                    outer.set_result(self._inline(observations, alpha, spill_to).result())
                 except BaseException as inline_exc:  # noqa: BLE001 - handed to the waiting caller
                     outer.set_exception(inline_exc)
             except BaseException as exc:  # noqa: BLE001 - the batch's own error, handed on
@@ -209,11 +210,11 @@ class DiagnosePool:
         inner.add_done_callback(done)
         return outer
 
-    def _inline(self, observations: pd.DataFrame, alpha: float) -> Future:
+    def _inline(self, observations: pd.DataFrame, alpha: float, spill_to: str | None = None) -> Future:
         f: Future = Future()
         with self._inline_lock:  # batches hold the GIL: one at a time is fastest
             try:
-                f.set_result(_diagnose(observations, alpha))
+                f.set_result(_diagnose(observations, alpha, spill_to))
             except BaseException as exc:  # noqa: BLE001 - handed to the caller through the Future
                 f.set_exception(exc)
         return f

@@ -39,6 +39,7 @@ from audit.intake import ReviewInput, combine, read_files
 from audit.validation import CaseOrder, validate_in_slices
 from audit.memory import release_freed_memory
 from audit.parallel import DiagnosePool, input_bytes, workers_for_input
+from audit.spill import SpilledTables, spill_folder, spill_tables
 from audit.store import ResultsStore, content_hashes_of_slices, file_sha256
 
 __all__ = [
@@ -545,11 +546,16 @@ def _resolve_diagnose(diagnose: Diagnose | None) -> Diagnose:
     return fn
 
 
-def diagnose_batch(observations: pd.DataFrame, alpha: float, diagnose: Diagnose | None = None) -> dict[str, pd.DataFrame]:
-    """Diagnostics tables of one batch of cases (``audit.diagnose.diagnose_cases`` by default)."""
+def diagnose_batch(observations: pd.DataFrame, alpha: float, diagnose: Diagnose | None = None,
+                   spill_to: str | Path | None = None) -> MutableMapping[str, pd.DataFrame]:
+    """Diagnostics tables of one batch of cases (``audit.diagnose.diagnose_cases`` by default).
+
+    With ``spill_to`` (a run's :func:`audit.spill.spill_folder`) the tables are written there
+    and a handle that reads them back is returned instead (:class:`audit.spill.SpilledTables`)."""
     fn = _resolve_diagnose(diagnose)
     out = fn(observations, alpha=alpha)
-    return {str(name): df for name, df in out.items() if isinstance(df, pd.DataFrame)}
+    tables = {str(name): df for name, df in out.items() if isinstance(df, pd.DataFrame)}
+    return tables if spill_to is None else spill_tables(tables, spill_to)
 
 
 def _ordered(df: pd.DataFrame, order: Mapping[str, int]) -> pd.DataFrame:
@@ -595,6 +601,11 @@ def assemble_tables(review: ReviewInput, plan: ReusePlan,
     }
     for name in names:
         computed = _concat([r[name] for r in batch_results if name in r])
+        # columns that were categoricals before their batch was spilled (audit.spill) become
+        # categoricals again (one code per row instead of one string)
+        for col in {c for r in batch_results if isinstance(r, SpilledTables) for c in r.categorical(name)}:
+            if col in computed.columns and not isinstance(computed[col].dtype, pd.CategoricalDtype):
+                computed[col] = computed[col].astype(pd.CategoricalDtype())
         for r in batch_results:
             if isinstance(r, MutableMapping):
                 r.pop(name, None)
@@ -741,8 +752,7 @@ def run_audit(
     if not force and (same := unchanged_run(store_path, files, path_problems, config, with_report=with_report)):
         return same
     n_workers = 1 if diagnose is not None else workers_for_input(workers, input_bytes(files))
-    with DiagnosePool(n_workers) as pool:
-        pool.start()  # the workers start while the files are read
+    with DiagnosePool(n_workers) as pool:  # started once there are cases to compute
         return _run_with_pool(pool, files, path_problems, store_path, config, progress, batch_size, diagnose,
                               lock_timeout, with_summary, with_report)
 
@@ -761,15 +771,30 @@ def _run_with_pool(pool: DiagnosePool, files, path_problems, store_path, config:
     review = combine_reads(reads, path_problems, config)
     store = open_store(store_path)
     plan = plan_run(review, store, config)
+    if len(plan.to_compute) and diagnose is None:
+        pool.start()  # after intake, whose peak they would add to; they start while batches are cut
+    with spill_folder(store.path) as spill_to:  # batch results wait on disk until they are joined
+        tables = _diagnose_and_assemble(pool, review, plan, config, progress, batch_size, diagnose, spill_to)
+    if with_summary:
+        tables.update(summary_tables(tables, config.alpha, review.prepared.cases))
+    summary = write_run(store, review, plan, tables, config, hashes, lock_timeout)
+    del tables, review, plan  # the report reads what it needs back from the store
+    return write_report(store, summary) if with_report else summary
+
+
+def _diagnose_and_assemble(pool: DiagnosePool, review: ReviewInput, plan: ReusePlan, config: AuditConfig,
+                           progress: Progress | None, batch_size: int, diagnose: Diagnose | None,
+                           spill_to: Path) -> dict[str, pd.DataFrame]:
     batch_rows = case_batch_rows(plan.to_compute, batch_size)
     results = []
     if progress:
         progress("diagnose", 0, len(batch_rows))
     if diagnose is None and pool.uses_processes:  # two batches per worker in flight: none waits
-        outcome = bounded_results(lambda batch, _: pool.submit(batch, config.alpha), plan.to_compute,
-                                  batch_rows, 2 * pool.workers)
+        outcome = bounded_results(lambda batch, _: pool.submit(batch, config.alpha, str(spill_to)),
+                                  plan.to_compute, batch_rows, 2 * pool.workers)
     else:
-        outcome = (diagnose_batch(take_rows(plan.to_compute, rows), config.alpha, diagnose) for rows in batch_rows)
+        outcome = (diagnose_batch(take_rows(plan.to_compute, rows), config.alpha, diagnose, spill_to)
+                   for rows in batch_rows)
     for i, tables_of_batch in enumerate(outcome, start=1):
         results.append(tables_of_batch)
         if progress:
@@ -780,8 +805,4 @@ def _run_with_pool(pool: DiagnosePool, files, path_problems, store_path, config:
         log.warning(pool.fallback_reason)
     tables = assemble_tables(review, plan, results)
     results.clear()  # the batch tables now live in ``tables``
-    if with_summary:
-        tables.update(summary_tables(tables, config.alpha, review.prepared.cases))
-    summary = write_run(store, review, plan, tables, config, hashes, lock_timeout)
-    del tables, results, review, plan  # the report reads what it needs back from the store
-    return write_report(store, summary) if with_report else summary
+    return tables

@@ -164,12 +164,11 @@ def _as_text(values: pd.Series) -> pd.Series:
 
     arr = values.to_numpy(dtype=object)
     if pd.api.types.infer_dtype(arr, skipna=True) in ("string", "empty"):  # text cells (the CSV path)
-        missing = pd.isna(arr)
-        out = np.full(arr.shape, None, dtype=object)
-        stripped = pd.Series(arr[~missing], dtype=object).str.strip().to_numpy(dtype=object, copy=True)
-        stripped[stripped == ""] = None
-        out[~missing] = stripped
-        return pd.Series(out, index=values.index, dtype=object)
+        # each distinct cell is stripped once (ids and labels repeat on every row)
+        codes, distinct = pd.factorize(arr, use_na_sentinel=True)
+        stripped = np.empty(len(distinct) + 1, dtype=object)  # the last entry: missing cells
+        stripped[:-1] = [v.strip() or None for v in distinct]
+        return pd.Series(stripped[codes], index=values.index, dtype=object)
     return pd.Series([one(v) for v in values.tolist()], index=values.index, dtype=object)
 
 
@@ -292,7 +291,7 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
         frame.loc[has_ids, "case_key"] = case_key(frame.loc[has_ids, "study"], frame.loc[has_ids, "case"], frame.loc[has_ids, "series"])
 
     problems = _Problems()
-    for key, part in frame[bad_mask & has_ids.to_numpy()].groupby("case_key", sort=False):
+    for key, part in frame[bad_mask & has_ids.to_numpy()].groupby("case_key", sort=False, observed=True):
         rows = compact_rows(part["source_row"])
         problems.add(key, "case_has_invalid_rows",
                      f"case quarantined because row(s) {rows} of {part['source_file'].iloc[0]} are invalid "
@@ -302,18 +301,26 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
     good = frame[~bad_mask] if bad_mask.any() else frame
     # the rest needs only where each raw row came from (quarantine entries)
     frame = frame[["source_file", "source_sheet", "source_row", "study", "case", "series", "case_key"]]
+    for col in ("source_file", "source_sheet", "study", "case", "series", "case_key"):
+        frame[col] = _categories(frame[col])
 
     # ---- conditions from phase labels where not given
     labels = good.loc[good["condition"].isna(), "phase"].unique()
     derived = {lab: condition_from_label(lab, config.phase_map) for lab in labels}
     need = good["condition"].isna()
     good.loc[need, "condition"] = good.loc[need, "phase"].map(derived)
-    for key, part in good[good["condition"].isna()].groupby("case_key", sort=False):
+    for key, part in good[good["condition"].isna()].groupby("case_key", sort=False, observed=True):
         label = part["phase"].iloc[0]
         problems.add(key, "ambiguous_phase_label",
                      f"phase label {label!r} cannot be mapped to baseline or treatment; add a `condition` column "
                      f"or map it in the config, e.g. [phases] \"{label}\" = \"treatment\"",
                      "phase", label)
+
+    # From here on the text of each row is final but for the design name: each text column becomes
+    # a categorical (a small code per row), so that sorting and grouping move codes, not strings.
+    for col in _CODED_COLUMNS:
+        good[col] = _categories(good[col])
+    good = good.drop(columns=["extra_fields", "__extra_fields"], errors="ignore")
 
     # ---- order, exact duplicates, conflicting sessions
     good = good.sort_values(["case_key", "session", "_pos"], kind="stable").reset_index(drop=True)
@@ -340,11 +347,11 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
             "old_value": where, "new_value": "collapsed",
             "rule": "duplicate_collapsed", "case_key": dropped["case_key"].to_numpy(),
         }))
-        counts = good.groupby(dup_cols, sort=False, dropna=False)["_pos"].transform("size")
+        counts = good.groupby(dup_cols, sort=False, dropna=False, observed=True)["_pos"].transform("size")
         good["n_source_rows"] = counts.to_numpy()
         good = good[~is_dup].reset_index(drop=True)
     same_session = good.duplicated(["case_key", "session"], keep=False)
-    for key, part in good[same_session].groupby("case_key", sort=False):
+    for key, part in good[same_session].groupby("case_key", sort=False, observed=True):
         s = part["session"].iloc[0]
         problems.add(key, "duplicate_session",
                      f"several points at session {s:g} with different outcomes or phases (rows "
@@ -358,7 +365,7 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
         frac = np.abs(good["session"].to_numpy() - rounded)
         good["_frac"] = frac
         good["_rounded"] = rounded
-        case_max = good.groupby("case_key", sort=False)["_frac"].transform("max").to_numpy()
+        case_max = good.groupby("case_key", sort=False, observed=True)["_frac"].transform("max").to_numpy()
         candidate = (case_max <= tol) & (case_max > 0)
         conflict = good[candidate].duplicated(["case_key", "_rounded"], keep=False)
         conflict_keys = set(good[candidate][conflict.to_numpy()]["case_key"])
@@ -391,13 +398,13 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
     low_clip = pct & (y < 0) & (y >= -margin)
     high_clip = pct & (y > 100) & (y <= 100 + margin)
     outside = pct & ((y < -margin) | (y > 100 + margin))
-    for key, part in good[outside].groupby("case_key", sort=False):
+    for key, part in good[outside].groupby("case_key", sort=False, observed=True):
         problems.add(key, "out_of_range",
                      f"percent outcome {part['outcome'].iloc[0]:g} (row {part['source_row'].iloc[0]}) is outside 0-100 by more "
                      f"than the clip margin of {margin:g}; check the digitizing or the outcome_scale",
                      "outcome", f"{part['outcome'].iloc[0]:g}")
     negative = good["outcome_scale"].isin(NONNEGATIVE_SCALES).to_numpy() & (y < 0)
-    for key, part in good[negative].groupby("case_key", sort=False):
+    for key, part in good[negative].groupby("case_key", sort=False, observed=True):
         problems.add(key, "negative_value",
                      f"{part['outcome_scale'].iloc[0]} outcome {part['outcome'].iloc[0]:g} (row {part['source_row'].iloc[0]}) "
                      "is negative; check the digitizing or the outcome_scale",
@@ -417,7 +424,7 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
 
     # ---- one design, scale and direction per case
     for col in ("design", "outcome_scale", "desired_direction"):
-        counts = good.groupby("case_key", sort=False)[col].nunique(dropna=False)
+        counts = good.groupby("case_key", sort=False, observed=True)[col].nunique(dropna=False)
         for key in counts.index[counts > 1]:
             values = sorted(str(v) for v in good.loc[good["case_key"] == key, col].unique())
             problems.add(key, "inconsistent_case_attribute",
@@ -425,11 +432,13 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
                          col, values[0])
 
     # ---- phases
-    prev_key = good["case_key"].shift()
-    prev_phase = good["phase"].shift()
-    starts = (good["case_key"] != prev_key) | (good["phase"] != prev_phase)
-    good["phase_index"] = starts.astype("int64").groupby(good["case_key"], sort=False).cumsum()
-    cond_per_phase = good.groupby(["case_key", "phase_index"], sort=False)["condition"].nunique(dropna=True)
+    key_codes = good["case_key"].cat.codes.to_numpy()
+    phase_codes = good["phase"].cat.codes.to_numpy()
+    starts = np.ones(len(good), dtype=np.int64)  # 1 where a case or a run of one phase label begins
+    starts[1:] = (key_codes[1:] != key_codes[:-1]) | (phase_codes[1:] != phase_codes[:-1])
+    good["phase_index"] = pd.Series(starts, index=good.index).groupby(key_codes, sort=False).cumsum()
+    cond_per_phase = good.groupby(["case_key", "phase_index"], sort=False, observed=True)["condition"].nunique(
+        dropna=True)
     for key, _ in cond_per_phase[cond_per_phase > 1].index:
         problems.add(key, "condition_changes_within_phase",
                      "the condition column changes within one phase label run; check the phase and condition columns",
@@ -441,28 +450,31 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
     good["design_source"] = pd.Categorical.from_codes(np.where(given, 0, 1), ["given", "inferred"])
     if (~given).any():
         phase_conditions = (
-            good[~given].groupby(["case_key", "phase_index"], sort=True)["condition"].first().dropna()
+            good[~given].groupby(["case_key", "phase_index"], sort=True, observed=True)["condition"].first().dropna()
         )
-        inferred = phase_conditions.groupby(level=0).agg(lambda c: design_from_conditions(list(c)))
+        inferred = phase_conditions.groupby(level=0, observed=True).agg(lambda c: design_from_conditions(list(c)))
         good.loc[~given, "design"] = good.loc[~given, "case_key"].map(inferred).astype(object).fillna("other")
 
     # ---- case rules
     alternating = good["design"] == "alternating"
-    conds = good.groupby("case_key", sort=False)["condition"].agg(lambda c: set(c.dropna()))
-    for key, present in conds.items():
+    present = {needed: (good["condition"] == needed).groupby(key_codes, sort=False).any()
+               for needed in ("baseline", "treatment")}
+    lacking = ~(present["baseline"].to_numpy() & present["treatment"].to_numpy())
+    for code in present["baseline"].index[lacking]:
+        key = good["case_key"].cat.categories[code]
         for needed in ("baseline", "treatment"):
-            if needed not in present:
+            if not present[needed][code]:
                 problems.add(key, f"missing_{needed}_phase",
                              f"case has no {needed} phase; each case needs at least one baseline and one treatment phase",
                              "condition", None)
     # (only the columns needed: a masked copy of the whole table would double it for a moment)
     phase_sizes = good.loc[~alternating, ["case_key", "phase_index", "session", "phase", "source_file"]].groupby(
-        ["case_key", "phase_index"], sort=False).agg(
+        ["case_key", "phase_index"], sort=False, observed=True).agg(
         n=("session", "size"), phase=("phase", "first"), first=("session", "min"), last=("session", "max"),
         file=("source_file", "first"),
     )
     cond_sizes = good.loc[alternating, ["case_key", "condition", "session"]].groupby(
-        ["case_key", "condition"], sort=False).agg(n=("session", "size"))
+        ["case_key", "condition"], sort=False, observed=True).agg(n=("session", "size"))
     for (key, idx), row in phase_sizes[phase_sizes["n"] < MIN_PHASE_POINTS].iterrows():
         problems.add(key, "phase_too_short",
                      f"phase {row['phase']!r} (phase {idx}, sessions {row['first']:g}-{row['last']:g}) has {row['n']} point(s); "
@@ -472,7 +484,7 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
         problems.add(key, "condition_too_short",
                      f"alternating design: condition {cond} has {row['n']} point(s); at least {MIN_PHASE_POINTS} are needed",
                      "condition", cond)
-    sizes = good.groupby("case_key", sort=False)["session"].size()
+    sizes = good.groupby("case_key", sort=False, observed=True)["session"].size()
     for key in sizes.index[sizes > config.limits.max_points_per_case]:
         problems.add(key, "too_many_points",
                      f"case has {sizes[key]:,} points, above the limit of {config.limits.max_points_per_case:,}; "
@@ -503,7 +515,8 @@ def prepare_rows(raw: pd.DataFrame, file_problems: list[FileProblem], config: Au
             adj[col] = adj[col].astype(str)
 
     observations = accepted[OBSERVATION_COLUMNS]  # copy-on-write: columns are copied only when changed
-    observations["tier"] = observations["tier"].astype(object)
+    for col in _CODED_COLUMNS:  # the categories of the quarantined cases go
+        observations[col] = observations[col].cat.remove_unused_categories()
     for col in ("session", "outcome"):
         observations[col] = observations[col].astype("float64")
     for col in ("phase_index", "source_row", "n_source_rows"):
@@ -551,6 +564,18 @@ def validate_in_slices(df: pd.DataFrame, schema) -> pd.DataFrame:
     return schema.to_schema().coerce_dtype(df)  # then the dtypes once, for the whole table
 
 
+# text columns held as categoricals from the sort on (the design name is settled after it)
+_CODED_COLUMNS = ("case_key", "study", "case", "series", "phase", "condition", "outcome_scale", "desired_direction",
+                  "tier", "source_file", "source_sheet")
+
+
+def _categories(values: pd.Series) -> pd.Series:
+    """A text column as a categorical with sorted categories (as the observations schema makes it)."""
+    if isinstance(values.dtype, pd.CategoricalDtype):
+        return values
+    return values.astype(object).astype(pd.CategoricalDtype())
+
+
 def _accepted_cases(accepted: pd.DataFrame, adj_counts: pd.Series) -> pd.DataFrame:
     if accepted.empty:
         cols = {c: pd.Series([], dtype=object) for c in ("case_key", "study", "case", "series", "design", "design_source",
@@ -560,14 +585,21 @@ def _accepted_cases(accepted: pd.DataFrame, adj_counts: pd.Series) -> pd.DataFra
             frame[c] = pd.Series([], dtype="int64")
         frame["below_five_point_standard"] = pd.Series([], dtype=bool)
         return frame
-    g = accepted.groupby("case_key", sort=False)
+    g = accepted.groupby("case_key", sort=False, observed=True)
     cases = g.agg(
         study=("study", "first"), case=("case", "first"), series=("series", "first"), design=("design", "first"),
         design_source=("design_source", "first"), outcome_scale=("outcome_scale", "first"),
         desired_direction=("desired_direction", "first"), n_points=("session", "size"), n_phases=("phase_index", "max"),
     ).reset_index()
-    per_phase = accepted.groupby(["case_key", "phase_index"], sort=False).size().groupby(level=0).min()
-    per_cond = accepted.groupby(["case_key", "condition"], sort=False).size().groupby(level=0).min()
+    for col in cases.columns:  # plain text (the schema makes strings of them)
+        if isinstance(cases[col].dtype, pd.CategoricalDtype):
+            cases[col] = cases[col].astype(object)
+    per_phase = accepted.groupby(["case_key", "phase_index"], sort=False, observed=True).size()
+    per_phase = per_phase.groupby(level=0, observed=True).min()
+    per_phase.index = per_phase.index.astype(object)
+    per_cond = accepted.groupby(["case_key", "condition"], sort=False, observed=True).size()
+    per_cond = per_cond.groupby(level=0, observed=True).min()
+    per_cond.index = per_cond.index.astype(object)
     alt = cases["design"] == "alternating"
     cases["min_phase_points"] = np.where(alt, cases["case_key"].map(per_cond), cases["case_key"].map(per_phase)).astype("int64")
     cases["below_five_point_standard"] = cases["min_phase_points"] < STANDARD_PHASE_POINTS
@@ -606,7 +638,8 @@ def _quarantine_table(frame, bad_rows, rejected_rows, problems: _Problems, file_
         if collapsed is not None and len(collapsed) and len(removed):
             removed = pd.concat([removed, collapsed[collapsed["case_key"].isin(set(removed["case_key"]))]],
                                 ignore_index=True)
-        by_key = {k: part for k, part in removed.groupby("case_key", sort=False)} if len(removed) else {}
+        by_key = ({k: part for k, part in removed.groupby("case_key", sort=False, observed=True)}
+                  if len(removed) else {})
         for item in problems.items:
             key = item["case_key"]
             part = by_key.get(key)
@@ -617,7 +650,7 @@ def _quarantine_table(frame, bad_rows, rejected_rows, problems: _Problems, file_
                 groups = [((meta["source_file"], meta["source_sheet"]), None)]
             else:
                 meta = part.iloc[0]
-                groups = list(part.groupby(["source_file", "source_sheet"], sort=False))
+                groups = list(part.groupby(["source_file", "source_sheet"], sort=False, observed=True))
             for i, ((f, sh), sub) in enumerate(groups):
                 n_rows = len(sub) if (first and sub is not None) else 0
                 entries.append({

@@ -19,7 +19,7 @@ import hashlib
 import os
 import sys
 from collections.abc import Callable, Iterator, Sequence
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from pathlib import Path
 from typing import Any
 
@@ -114,9 +114,10 @@ def plan_reuse(review: ReviewInput, store: str, config: AuditConfig) -> rerun.Re
 
 
 @task(name="diagnose-batch", task_run_name="diagnose batch {batch_number}", **_common)
-def diagnose_batch(observations: Any, alpha: float, batch_number: int) -> dict[str, Any]:
-    """Diagnostics tables of one batch of cases (in the flow's worker processes when it has them)."""
-    return _workers.diagnose(observations, alpha)
+def diagnose_batch(observations: Any, alpha: float, batch_number: int, spill_to: str | None = None) -> Any:
+    """Diagnostics tables of one batch of cases (in the flow's worker processes when it has them);
+    with ``spill_to``, a handle to them written there (``audit.spill``)."""
+    return _workers.diagnose(observations, alpha, spill_to)
 
 
 @task(name="summarize", **_common)
@@ -216,23 +217,30 @@ def _audit_files(files: list[Path], path_problems: list[FileProblem], store: str
         _report_progress("read", i, len(files))
     review = combine_files(reads, path_problems, config)
     plan = plan_reuse(review, store, config)
-    batch_rows = rerun.case_batch_rows(plan.to_compute, batch_size)
-    _report_progress("diagnose", 0, len(batch_rows))
-    results = []
-    # at most two batches per thread of the runner in flight: the rest are not yet cut out
-    in_flight = 2 * max(1, getattr(_current_task_runner(), "_max_workers", None) or default_workers())
-    for done, tables_of_batch in enumerate(rerun.bounded_results(
-            lambda batch, number: diagnose_batch.submit(batch, config.alpha, number),
-            plan.to_compute, batch_rows, in_flight), start=1):
-        results.append(tables_of_batch)
-        _report_progress("diagnose", done, len(batch_rows))
-    _workers.close()  # the worker processes' memory goes back before the summary
-    if _workers.fallback_reason():
-        get_run_logger().warning(_workers.fallback_reason())
-    # quote: Prefect does not walk the batch tables (parameter introspection of many frames); the
-    # task gets this very list and empties it, so the flow holds no batch tables afterwards
-    tables = summarize(review, plan, quote(results), config.alpha, with_summary)
-    del results
+    if len(plan.to_compute):
+        _workers.start()
+    # batch results wait on disk until they are joined (audit.spill); not with Dask, whose
+    # workers may run on other machines
+    local = isinstance(_current_task_runner(), ThreadPoolTaskRunner)
+    with (rerun.spill_folder(store) if local else nullcontext(None)) as spill_to:
+        spill = None if spill_to is None else str(spill_to)
+        batch_rows = rerun.case_batch_rows(plan.to_compute, batch_size)
+        _report_progress("diagnose", 0, len(batch_rows))
+        results = []
+        # at most two batches per thread of the runner in flight: the rest are not yet cut out
+        in_flight = 2 * max(1, getattr(_current_task_runner(), "_max_workers", None) or default_workers())
+        for done, tables_of_batch in enumerate(rerun.bounded_results(
+                lambda batch, number: diagnose_batch.submit(batch, config.alpha, number, spill),
+                plan.to_compute, batch_rows, in_flight), start=1):
+            results.append(tables_of_batch)
+            _report_progress("diagnose", done, len(batch_rows))
+        _workers.close()  # the worker processes' memory goes back before the summary
+        if _workers.fallback_reason():
+            get_run_logger().warning(_workers.fallback_reason())
+        # quote: Prefect does not walk the batch tables (parameter introspection of many frames);
+        # the task gets this very list and empties it, so the flow holds no batch tables afterwards
+        tables = summarize(review, plan, quote(results), config.alpha, with_summary)
+        del results
     summary = write_store(store, review, plan, tables, config, hashes, lock_timeout)
     del tables, review, plan, reads  # the report reads what it needs back from the store
     return report(store, summary) if with_report else summary

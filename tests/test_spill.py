@@ -1,0 +1,135 @@
+"""Batch results kept on disk during a run (audit.spill) and the run-level wiring around them.
+
+Plumbing checks: the in-memory batch tables are the reference for the spilled ones (the
+statistics themselves are checked against outside references in the engine's own tests).
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from audit import rerun, spill
+from audit.config import AuditConfig
+from audit.intake import load_review
+from audit.parallel import DiagnosePool
+from audit.spill import SpilledTables, spill_folder, spill_tables
+
+FIXTURE = Path(__file__).resolve().parents[1] / "fixtures" / "demo_small"
+
+
+@pytest.fixture(scope="module")
+def review():
+    return load_review([FIXTURE / "data"], AuditConfig())
+
+
+@pytest.fixture(scope="module")
+def batch_tables(review):
+    batches = rerun.case_batches(review.prepared.observations, 5)
+    return [rerun.diagnose_batch(b, 0.05) for b in batches]
+
+
+def _as_text(frame: pd.DataFrame) -> pd.DataFrame:
+    out = frame.copy()
+    for col, dtype in out.dtypes.items():
+        if isinstance(dtype, pd.CategoricalDtype):
+            out[col] = out[col].astype("str")
+    return out
+
+
+def test_spilled_tables_read_back_equal(batch_tables, tmp_path):
+    tables = batch_tables[0]
+    assert any(isinstance(t, pd.CategoricalDtype) for df in tables.values() for t in df.dtypes)
+    handle = spill_tables(tables, tmp_path)
+    assert list(handle) == list(tables) and len(handle) == len(tables)
+    for name, frame in tables.items():
+        got = handle[name]
+        # every column equal, dtypes included; categoricals come back as their text
+        pd.testing.assert_frame_equal(got, _as_text(frame), check_exact=True)
+        assert handle.categorical(name) == [c for c, t in frame.dtypes.items() if isinstance(t, pd.CategoricalDtype)]
+
+
+def test_spilled_tables_pop_deletes_the_file_and_pickle_small(batch_tables, tmp_path):
+    import pickle
+
+    handle = spill_tables(batch_tables[0], tmp_path)
+    files_before = sorted(handle.folder.iterdir())
+    first = next(iter(handle))
+    frame = handle.pop(first)
+    assert len(frame) == len(batch_tables[0][first])
+    assert first not in handle and len(handle) == len(batch_tables[0]) - 1
+    assert len(sorted(handle.folder.iterdir())) == len(files_before) - 1
+    with pytest.raises(KeyError):
+        handle[first]
+    with pytest.raises(TypeError):
+        handle["cases"] = frame
+    # what a worker process sends back is the handle, not the tables
+    assert len(pickle.dumps(handle)) < 2_000
+    other = next(iter(handle))
+    pd.testing.assert_frame_equal(pickle.loads(pickle.dumps(handle))[other], handle[other])
+
+
+def test_assemble_tables_same_from_spilled_and_in_memory_batches(review, batch_tables, tmp_path):
+    plan = rerun.plan_run(review, None, AuditConfig())
+    in_memory = rerun.assemble_tables(review, plan, [dict(t) for t in batch_tables])
+    handles = [spill_tables(t, tmp_path) for t in batch_tables]
+    spilled = rerun.assemble_tables(review, plan, handles)
+    assert set(spilled) == set(in_memory)
+    for name in in_memory:
+        pd.testing.assert_frame_equal(spilled[name], in_memory[name], check_exact=True)
+    assert all(len(h) == 0 for h in handles)  # each table's files go once it is joined
+
+
+def test_spill_folder_is_removed_and_stale_folders_with_it(tmp_path):
+    root = tmp_path / spill.SPILL_FOLDER
+    root.mkdir()
+    # a folder of a finished process (its pid no longer runs) and one of this live process
+    gone = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    stale = root / f"run-{int(gone.stdout)}-abc"
+    stale.mkdir()
+    (stale / "0.arrow").write_bytes(b"x")
+    live = root / f"run-{os.getpid()}-def"
+    live.mkdir()
+    with spill_folder(tmp_path) as folder:
+        assert folder.parent == root and folder.is_dir()
+        assert not stale.exists() and live.exists()
+        spill_tables({"t": pd.DataFrame({"a": [1.0]})}, folder)
+    assert not folder.exists()
+    assert live.exists()  # another run (here: this process) may still use it
+    live.rmdir()
+    with spill_folder(tmp_path):
+        pass
+    assert not root.exists()  # the last run out removes .batches
+
+
+def test_run_leaves_no_spill_folder_and_starts_workers_only_with_work(tmp_path, monkeypatch):
+    started: list[bool] = []
+    real_start = DiagnosePool.start
+
+    def start(self):
+        started.append(True)
+        return real_start(self)
+
+    monkeypatch.setattr(DiagnosePool, "start", start)
+    store = tmp_path / "store"
+    rerun.run_audit([FIXTURE / "data"], store, with_report=False, workers=1)
+    assert started == [True]
+    assert not (store / spill.SPILL_FOLDER).exists()
+    started.clear()
+    forced = rerun.run_audit([FIXTURE / "data"], store, with_report=False, workers=1, force=True)
+    assert forced.cases_reused > 0 and forced.cases_computed == 0
+    assert started == []  # every case reused: no worker processes
+
+
+def test_spilled_handle_type_is_what_batches_return(review, tmp_path):
+    batch = rerun.case_batches(review.prepared.observations, 5)[0]
+    out = rerun.diagnose_batch(batch, 0.05, spill_to=tmp_path)
+    assert isinstance(out, SpilledTables)
+    plain = rerun.diagnose_batch(batch, 0.05)
+    for name in plain:
+        pd.testing.assert_frame_equal(out[name], _as_text(plain[name]), check_exact=True)
