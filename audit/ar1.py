@@ -124,14 +124,21 @@ class _Moments:
 
 def _objective_from_pieces(method, n, k, rho, rss, drss, logdet, dlogdet):
     """-2 loglik and its derivative in rho."""
+    f = _objective_value(method, n, k, rho, rss, logdet)
     one = 1.0 - rho**2
     if method == "REML":
-        f = (n - k) * np.log(rss / (n - k)) - np.log(one) + logdet + (n - k) * _LOG2PI1
         df = (n - k) * drss / rss + 2.0 * rho / one + dlogdet
     else:
-        f = n * np.log(rss / n) - np.log(one) + n * _LOG2PI1
         df = n * drss / rss + 2.0 * rho / one
     return f, df
+
+
+def _objective_value(method, n, k, rho, rss, logdet):
+    """-2 loglik alone (``_objective_from_pieces`` without the derivative)."""
+    one = 1.0 - rho**2
+    if method == "REML":
+        return (n - k) * np.log(rss / (n - k)) - np.log(one) + logdet + (n - k) * _LOG2PI1
+    return n * np.log(rss / n) - np.log(one) + n * _LOG2PI1
 
 
 def _batch_objective_grid(mom: _Moments, method: str):

@@ -39,7 +39,7 @@ from scipy import special
 from audit.asymptotic_tests import bg_lm_rows, ljung_box_default_lags, ljung_box_rows
 from audit.durbin_watson import dw_statistic_rows as _dw_rows, dw_zones as _zone
 from audit import reasons as R
-from audit.ar1 import _GRID, _brackets, _objective_from_pieces, gls_rss_pieces
+from audit.ar1 import _GRID, _brackets, _objective_from_pieces, _objective_value, gls_rss_pieces
 from audit.durbin_watson import critical_bounds
 from audit.quadform import (
     GAUSS7_WEIGHTS_ON_KRONROD_NODES,
@@ -270,11 +270,7 @@ def case_design_stacks(session, phase_index, condition, design, phase_label, cas
     n_trans_case = np.where(alt, n_labels, n_trans_case)
     models = np.where(alt, "alternating", np.where(use_slopes, "level_and_trend", "level_only")).astype(object)
 
-    groups: dict[tuple[int, int], list[int]] = defaultdict(list)
-    for i, key in enumerate(zip(n_case.tolist(), k_case.tolist())):
-        groups[key].append(i)
-    for (n, k), members in groups.items():
-        idx = np.asarray(members)
+    for n, k, idx in _equal_pairs(n_case, k_case):
         rows = starts[idx][:, None] + np.arange(n)[None, :]
         X = np.zeros((idx.size, n, k))
         C = np.zeros((idx.size, k))
@@ -314,12 +310,34 @@ def case_design_stacks(session, phase_index, condition, design, phase_label, cas
 # ----------------------------------------------------------------------------- small helpers
 
 
+def _equal_pairs(a: np.ndarray, b: np.ndarray):
+    """(a, b, positions) for each distinct pair (a[i], b[i]) of two integer arrays, in order of
+    first appearance, positions increasing (as a dict of lists filled position by position)."""
+    if a.size == 0:
+        return
+    low = int(b.min())
+    key = a.astype(np.int64) * (int(b.max()) - low + 1) + (b - low)  # one integer per pair
+    _, first, inverse = np.unique(key, return_index=True, return_inverse=True)
+    inverse = inverse.ravel()
+    members = np.argsort(inverse, kind="stable")  # positions grouped by pair, increasing within
+    ends = np.cumsum(np.bincount(inverse, minlength=first.size))
+    begins = ends - np.bincount(inverse, minlength=first.size)
+    for g in np.argsort(first):
+        yield int(a[first[g]]), int(b[first[g]]), members[begins[g]:ends[g]]
+
+
 def _binary_exponents(Y: np.ndarray) -> np.ndarray:
     """Binary exponent of the largest finite |value| of each row (as regression.binary_exponents):
     dividing a row by 2**e is exact and brings it into [0.5, 1); rows without one get 0."""
     A = np.abs(np.where(np.isfinite(Y), Y, 0.0))
     top = A.max(axis=-1) if A.shape[-1] else np.zeros(A.shape[:-1])
     return np.frexp(top)[1].astype(np.int64)
+
+
+def _outer(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """a[:, None] * b[None, :] (the same products): numpy copies the operands of a broadcast
+    product through buffers first, einsum reads them in place."""
+    return np.einsum("i,j->ij", a, b)
 
 
 def _scale_rows(Y: np.ndarray, e: np.ndarray) -> np.ndarray:
@@ -444,10 +462,15 @@ class _Designs:
         self.mu = np.full((U, max(p, 0)), np.nan)
         dwi = np.flatnonzero(self.dw_ok)
         if dwi.size and p > 0:
-            dn = np.diff(self.N[dwi], axis=1)
-            self.B = np.zeros((U, p, p))
-            self.B[dwi] = dn.transpose(0, 2, 1) @ dn
-            self.mu[dwi] = np.clip(np.linalg.eigvalsh(self.B[dwi]), 0.0, 4.0)
+            every = dwi.size == U  # the usual case: no copies of the rows
+            dn = np.diff(self.N if every else self.N[dwi], axis=1)
+            B = dn.transpose(0, 2, 1) @ dn
+            if every:
+                self.B = B
+            else:
+                self.B = np.zeros((U, p, p))
+                self.B[dwi] = B
+            self.mu[dwi] = np.clip(np.linalg.eigvalsh(B), 0.0, 4.0)
         else:
             self.B = np.zeros((U, max(p, 0), max(p, 0)))
         if light:  # the session-only regression needs no more
@@ -615,7 +638,7 @@ def _imhof_cdf_density(lam: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     ones = np.ones(p)  # sums over the eigenvalues as BLAS products (faster than short-axis sums)
     for s0 in range(0, r, block):
         sl = slice(s0, s0 + block)
-        x = lt[sl, None, :] * u_all[None, :, None]
+        x = np.einsum("q,rp->rqp", u_all, lt[sl])  # lt u, without a buffered broadcast (quadform)
         x2 = 1.0 + x * x
         theta = 0.5 * (np.arctan(x) @ ones)
         np.divide(x, x2, out=x)  # x / (1 + x^2)
@@ -841,8 +864,8 @@ def _grid_cholesky(A1: np.ndarray, A2: np.ndarray):
 
     def entry(i: int, j: int) -> np.ndarray:
         if i == j:
-            return 1.0 - g * A1[:, j, j, None] + g2 * A2[:, j, j, None]
-        return -g * A1[:, i, j, None] + g2 * A2[:, i, j, None]
+            return 1.0 - _outer(A1[:, j, j], g) + _outer(A2[:, j, j], g2)
+        return _outer(A1[:, i, j], -g) + _outer(A2[:, i, j], g2)
 
     if k == 0:
         return [], np.zeros((A1.shape[0], g.size)), True
@@ -866,15 +889,14 @@ def _grid_values(rows: _AR1Rows, du: np.ndarray, L: np.ndarray, logdet: np.ndarr
     out = {meth: np.empty((m, G)) for meth in _METHODS}
     for s0 in range(0, m, _ROW_BLOCK):
         sl = slice(s0, s0 + _ROW_BLOCK)
-        ee0, ee1, ee2 = rows.ee0[sl, None], rows.ee1[sl, None], rows.ee2[sl, None]
-        mee = ee0 - g[None, :] * ee1 + g2[None, :] * ee2
+        mee = rows.ee0[sl, None] - _outer(rows.ee1[sl], g) + _outer(rows.ee2[sl], g2)
         d = du[sl]
         if lower:  # forward substitution on (rows, G) vectors, one entry of L at a time
             qe1, qe2 = rows.qe1[sl], rows.qe2[sl]
             w = []
             ssq = np.zeros_like(mee)
             for j in range(k):
-                acc = -g * qe1[:, j, None] + g2 * qe2[:, j, None]
+                acc = _outer(qe1[:, j], -g) + _outer(qe2[:, j], g2)
                 for p_ in range(j):
                     acc -= L[j][p_][d] * w[p_]
                 wj = acc / L[j][j][d]
@@ -889,8 +911,8 @@ def _grid_values(rows: _AR1Rows, du: np.ndarray, L: np.ndarray, logdet: np.ndarr
         ld = logdet[d]
         n_rows = rows.n[sl, None]
         with np.errstate(invalid="ignore", divide="ignore"):
-            for meth in _METHODS:
-                out[meth][sl] = _objective_from_pieces(meth, n_rows, rows.k, g[None, :], rss, 0.0, ld, 0.0)[0]
+            for meth in _METHODS:  # the values only (the score is not needed on the grid)
+                out[meth][sl] = _objective_value(meth, n_rows, rows.k, g[None, :], rss, ld)
     return out
 
 
@@ -930,7 +952,8 @@ def _score_root(rows: _AR1Rows, reml: np.ndarray, lo, hi, d_lo, d_hi, start=None
         act = np.flatnonzero(~done)
         if act.size == 0:
             break
-        fx = rows.take(act).objective(reml[act], x[act])[1]
+        active = rows if act.size == a.size else rows.take(act)  # no copy while all rows are active
+        fx = active.objective(reml[act], x[act])[1]
         xa = x[act]
         left = fx < 0
         a_new = np.where(left, xa, a[act])
@@ -1524,7 +1547,7 @@ def _power_eigenvalues(des: _Designs, rows: np.ndarray, c: np.ndarray, rho: floa
         gw, gv = np.linalg.eigh(G)
         root = (gv * np.sqrt(np.clip(gw, 0.0, None))[:, None, :]) @ gv.transpose(0, 2, 1)
     sign = 1.0 if rho > 0 else -1.0
-    cmat = sign * (des.B[rows] - c[:, None, None] * np.eye(p))
+    cmat = sign * (des.B[rows] - np.einsum("u,ij->uij", c, np.eye(p)))  # c I per row, as _outer forms products
     form = root.transpose(0, 2, 1) @ cmat @ root
     lam = np.linalg.eigvalsh(0.5 * (form + form.transpose(0, 2, 1)))
     big = np.abs(lam).max(axis=1, keepdims=True)
