@@ -106,7 +106,7 @@ def _owner_alive(folder: Path) -> bool:
         pid = int(folder.name.split("-")[1])
     except (IndexError, ValueError):
         return False
-    if pid == os.getpid():
+    if pid == os.getpid() or os.name != "posix":  # (on Windows, os.kill would stop the process)
         return True
     try:
         os.kill(pid, 0)
