@@ -483,10 +483,9 @@ def plan_run(review: ReviewInput, store: ResultsStore | None, config: AuditConfi
     hashes = case_hashes(obs, config.as_parameters(), version)
     release_freed_memory()  # the canonical text of the hashing
     to_compute, reused = split_for_reuse(obs, hashes, store)
-    if reused:
-        release_freed_memory()  # Arrow's buffers of the store reads, now pandas frames
     source = None
     if reused:
+        release_freed_memory()  # Arrow's buffers of the store reads, now pandas frames
         source = reused["cases"].attrs.get("source_run")
     return ReusePlan(code_version=version, hashes=hashes, to_compute=to_compute, reused=reused, source_run=source)
 
