@@ -153,11 +153,12 @@ class ReusePlan:
     to_compute: pd.DataFrame  # observations of the cases to diagnose
     reused: dict[str, pd.DataFrame] = field(default_factory=dict)  # table -> rows copied
     source_run: str | None = None
+    # cases copied (``reused`` is emptied as its tables are joined: ``assemble_tables``)
+    n_reused: int = field(init=False)
 
-    @property
-    def n_reused(self) -> int:
+    def __post_init__(self) -> None:
         cases = self.reused.get("cases")
-        return 0 if cases is None else int(len(cases))
+        self.n_reused = 0 if cases is None else int(len(cases))
 
     @property
     def n_to_compute(self) -> int:
@@ -579,14 +580,25 @@ def _concat(frames: list[pd.DataFrame]) -> pd.DataFrame:
     return frames[0].iloc[0:0].copy() if frames else pd.DataFrame()
 
 
+# Tables the summary reads (``summary_tables``), held in memory until the run is written; with a
+# ``stage`` function, assemble_tables hands the others to it as soon as each is joined.
+SUMMARY_INPUTS = ("observations", "quarantine", "adjustments", "cases")
+
+
 def assemble_tables(review: ReviewInput, plan: ReusePlan,
-                    batch_results: Sequence[Mapping[str, pd.DataFrame]]) -> dict[str, pd.DataFrame]:
+                    batch_results: Sequence[Mapping[str, pd.DataFrame]],
+                    stage: Callable[[str, pd.DataFrame], Any] | None = None) -> dict[str, Any]:
     """Every table of the run: input-side tables plus diagnostics (computed and reused) with hashes.
 
     Computed ``cases`` rows get the accepted-case columns (n_points, quality flags ...) that the
     diagnostics do not already hold; every diagnostics row gets its case's ``case_hash``.
     Rows are ordered as the accepted cases. Each batch's copy of a table is dropped from its
-    (mutable) mapping once the table is joined, so no table is held twice for long.
+    (mutable) mapping once the table is joined, and each reused table from ``plan.reused``, so
+    no table is held twice for long.
+
+    stage: ``stage(name, frame)`` for every table the summary does not read (not in
+    :data:`SUMMARY_INPUTS`), called as soon as the table is joined; its result (e.g. a
+    :class:`audit.store.PreparedTable`, see :func:`table_stager`) takes the frame's place.
     """
     prep = review.prepared
     order = {k: i for i, k in enumerate(prep.cases["case_key"])} if len(prep.cases) else {}
@@ -595,7 +607,7 @@ def assemble_tables(review: ReviewInput, plan: ReusePlan,
         for name in part:
             if name not in names:
                 names.append(name)
-    tables: dict[str, pd.DataFrame] = {
+    tables: dict[str, Any] = {
         "observations": prep.observations.reset_index(drop=True),
         "quarantine": prep.quarantine.reset_index(drop=True),
         "adjustments": prep.adjustments.reset_index(drop=True),
@@ -617,11 +629,24 @@ def assemble_tables(review: ReviewInput, plan: ReusePlan,
                 if extra:
                     computed = computed.merge(prep.cases[["case_key", *extra]], on="case_key", how="left")
             computed[HASH_KEY] = computed["case_key"].map(plan.hashes).astype(object)
-        reused = plan.reused.get(name)
+        reused = plan.reused.pop(name, None)
         frames = [f for f in (reused, computed) if f is not None]
-        tables[name] = _ordered(_concat(frames), order)
+        del reused, computed
+        table = _ordered(_concat(frames), order)
+        del frames
+        tables[name] = table if stage is None or name in SUMMARY_INPUTS else stage(name, table)
+        del table
     release_freed_memory()  # the batch results, now concatenated
     return tables
+
+
+def table_stager(store: ResultsStore, folder: str | Path | None) -> Callable[[str, pd.DataFrame], Any] | None:
+    """``stage`` for :func:`assemble_tables`: each table validated and written to ``folder``
+    (inside the store, e.g. the run's :func:`spill_folder`) by ``store.prepare_table``, for
+    ``write_run`` to move into the run. None without a folder."""
+    if folder is None:
+        return None
+    return lambda name, frame: store.prepare_table(name, frame, folder)
 
 
 def summary_tables(tables: Mapping[str, pd.DataFrame], alpha: float = 0.05,
@@ -630,7 +655,8 @@ def summary_tables(tables: Mapping[str, pd.DataFrame], alpha: float = 0.05,
 
     ``summarize(cases, alpha=, quarantine=, accepted_cases=, observations=)`` gets the run's
     tables (only the keywords it accepts); a summarize whose first parameter is not ``cases``
-    gets the dict of tables. A DataFrame result is stored as table ``summary``; a mapping as
+    gets the dict of the tables held as frames (tables staged by ``assemble_tables`` are not
+    in it). A DataFrame result is stored as table ``summary``; a mapping as
     ``summary_<name>`` tables.
     """
     summarize = _optional("audit.summary", "summarize")
@@ -643,7 +669,7 @@ def summary_tables(tables: Mapping[str, pd.DataFrame], alpha: float = 0.05,
         kwargs = {k: v for k, v in offered.items() if k in params and v is not None}
         result = summarize(tables["cases"], **kwargs)
     else:
-        result = summarize(dict(tables))
+        result = summarize({n: t for n, t in tables.items() if isinstance(t, pd.DataFrame)})
     release_freed_memory()
     if result is None:
         return {}
@@ -660,9 +686,11 @@ def _flips(cases: pd.DataFrame | None) -> int | None:
     return int(values.fillna(False).sum())
 
 
-def write_run(store: ResultsStore, review: ReviewInput, plan: ReusePlan, tables: Mapping[str, pd.DataFrame],
+def write_run(store: ResultsStore, review: ReviewInput, plan: ReusePlan, tables: Mapping[str, Any],
               config: AuditConfig, hashes_of_inputs: Mapping[str, str], lock_timeout: float = 60) -> RunSummary:
-    """Write every table (validated by the store) and commit the run with its counts."""
+    """Write every table (validated by the store) and commit the run with its counts.
+
+    A table may be a frame or a :class:`audit.store.PreparedTable` (:func:`table_stager`)."""
     prep = review.prepared
     cases = tables.get("cases")
     n_cases = int(len(cases)) if cases is not None else 0
@@ -774,18 +802,22 @@ def _run_with_pool(pool: DiagnosePool, files, path_problems, store_path, config:
     plan = plan_run(review, store, config)
     if len(plan.to_compute) and diagnose is None:
         pool.start()  # after intake, whose peak they would add to; they start while batches are cut
-    with spill_folder(store.path) as spill_to:  # batch results wait on disk until they are joined
-        tables = _diagnose_and_assemble(pool, review, plan, config, progress, batch_size, diagnose, spill_to)
-    if with_summary:
-        tables.update(summary_tables(tables, config.alpha, review.prepared.cases))
-    summary = write_run(store, review, plan, tables, config, hashes, lock_timeout)
+    # batch results wait on disk until they are joined; the joined tables the summary does not
+    # read wait there too, validated and written, until the run moves them into the store
+    with spill_folder(store.path) as spill_to:
+        tables = _diagnose_and_assemble(pool, review, plan, config, progress, batch_size, diagnose, spill_to,
+                                        table_stager(store, spill_to))
+        if with_summary:
+            tables.update(summary_tables(tables, config.alpha, review.prepared.cases))
+        summary = write_run(store, review, plan, tables, config, hashes, lock_timeout)
     del tables, review, plan  # the report reads what it needs back from the store
     return write_report(store, summary) if with_report else summary
 
 
 def _diagnose_and_assemble(pool: DiagnosePool, review: ReviewInput, plan: ReusePlan, config: AuditConfig,
                            progress: Progress | None, batch_size: int, diagnose: Diagnose | None,
-                           spill_to: Path) -> dict[str, pd.DataFrame]:
+                           spill_to: Path, stage: Callable[[str, pd.DataFrame], Any] | None = None,
+                           ) -> dict[str, Any]:
     batch_rows = case_batch_rows(plan.to_compute, batch_size)
     results = []
     if progress:
@@ -804,6 +836,6 @@ def _diagnose_and_assemble(pool: DiagnosePool, review: ReviewInput, plan: ReuseP
     pool.close()  # the worker processes' memory goes back before the summary
     if pool.fallback_reason:
         log.warning(pool.fallback_reason)
-    tables = assemble_tables(review, plan, results)
+    tables = assemble_tables(review, plan, results, stage)
     results.clear()  # the batch tables now live in ``tables``
     return tables

@@ -10,7 +10,9 @@ Layout::
 
 Commit protocol (one writer at a time, under ``.lock``):
 
-1. every table is written to ``.staging/<run_id>/<table>/part-0.parquet`` and fsynced;
+1. every table is written to ``.staging/<run_id>/<table>/part-0.parquet`` and fsynced (a table
+   prepared beforehand with :meth:`ResultsStore.prepare_table`, validated and written to a
+   file of its own, is moved there instead);
 2. each staged table folder is renamed to ``<table>/run=<run_id>`` (``os.replace``, same filesystem);
 3. the run's row is appended to the ledger: ``runs.parquet.tmp`` is written, fsynced and renamed
    over ``runs.parquet``. This rename is the commit point;
@@ -41,6 +43,7 @@ import re
 import secrets
 import shutil
 from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -52,6 +55,7 @@ from filelock import FileLock, Timeout
 
 __all__ = [
     "COUNT_COLUMNS",
+    "PreparedTable",
     "RUNS_COLUMNS",
     "ResultsStore",
     "Run",
@@ -315,6 +319,18 @@ def _write_parquet(df: pd.DataFrame, path: Path, row_group_size: int, categories
 # ----------------------------------------------------------------------------------- writer
 
 
+@dataclass(frozen=True)
+class PreparedTable:
+    """A table validated and written ahead of its run (:meth:`ResultsStore.prepare_table`): the
+    run moves the file in instead of holding the frame until it commits."""
+
+    name: str
+    path: Path
+    store: Path  # the store it was validated for (resolved)
+    n_rows: int
+    columns: tuple[str, ...]
+
+
 class Run:
     """One run being written: stage tables with :meth:`write_table`, then :meth:`commit`.
 
@@ -369,37 +385,43 @@ class Run:
         if self._state != "open":
             raise StoreError(f"run {self.run_id} is already {self._state}; start a new run")
 
-    def write_table(self, name: str, df: pd.DataFrame) -> None:
+    def write_table(self, name: str, df: pd.DataFrame | PreparedTable) -> None:
         """Validate ``df`` with the store's validator for ``name`` (if any) and stage it.
 
         The index is kept as columns unless it is a plain unnamed RangeIndex. A column named
         ``run`` is refused (it is the partition column). If the validator raises, the run is
-        marked failed and can no longer be committed.
+        marked failed and can no longer be committed. A :class:`PreparedTable` of this store
+        (validated and written by :meth:`ResultsStore.prepare_table`) is moved into the run.
         """
         self._require_open()
         _check_table_name(name)
         if name in self._tables:
             raise ValueError(f"table {name!r} was already written in run {self.run_id}")
+        if isinstance(df, PreparedTable):
+            self._stage_prepared(name, df)
+            return
         if not isinstance(df, pd.DataFrame):
             raise TypeError(f"table {name!r}: expected a pandas DataFrame, got {type(df).__name__}")
         try:
-            validator = self.store._validator_for(name)
-            if validator is not None:
-                out = validator(df)
-                df = df if out is None else out
-            if not (isinstance(df.index, pd.RangeIndex) and df.index.names == [None]):
-                df = df.reset_index()
-            if "run" in df.columns:
-                raise ValueError(
-                    f"table {name!r} has a column named 'run', which is reserved for the run "
-                    "partition; rename or drop it before writing"
-                )
-            bad = [c for c in df.columns if not isinstance(c, str)]
-            if bad:
-                raise ValueError(f"table {name!r}: column names must be strings, got {bad!r}")
+            df = self.store._checked(name, df)
             folder = self.staging / name
             folder.mkdir(parents=True, exist_ok=False)
             _write_parquet(df, folder / PART_FILE, self.store.row_group_size, self.store.categories_as_text)
+            _fsync_dir(folder)
+        except BaseException:
+            self._state = "failed"
+            raise
+        self._tables.append(name)
+
+    def _stage_prepared(self, name: str, table: PreparedTable) -> None:
+        if table.name != name:
+            raise ValueError(f"table {name!r}: the prepared table is {table.name!r}")
+        if table.store != self.store.path.resolve():
+            raise ValueError(f"table {name!r} was prepared for the store {table.store}, not {self.store.path}")
+        try:
+            folder = self.staging / name
+            folder.mkdir(parents=True, exist_ok=False)
+            os.replace(table.path, folder / PART_FILE)  # same store, same filesystem
             _fsync_dir(folder)
         except BaseException:
             self._state = "failed"
@@ -562,6 +584,40 @@ class ResultsStore:
             if fnmatch.fnmatchcase(name, pattern):
                 return fn
         return None
+
+    def _checked(self, name: str, df: pd.DataFrame) -> pd.DataFrame:
+        """``df`` as it is written: validated, index as columns, column names checked."""
+        validator = self._validator_for(name)
+        if validator is not None:
+            out = validator(df)
+            df = df if out is None else out
+        if not (isinstance(df.index, pd.RangeIndex) and df.index.names == [None]):
+            df = df.reset_index()
+        if "run" in df.columns:
+            raise ValueError(
+                f"table {name!r} has a column named 'run', which is reserved for the run "
+                "partition; rename or drop it before writing"
+            )
+        bad = [c for c in df.columns if not isinstance(c, str)]
+        if bad:
+            raise ValueError(f"table {name!r}: column names must be strings, got {bad!r}")
+        return df
+
+    def prepare_table(self, name: str, df: pd.DataFrame, folder: str | os.PathLike[str]) -> PreparedTable:
+        """Validate ``df`` as :meth:`Run.write_table` does and write it to a new file in ``folder``
+        (inside this store: the run moves it in). No lock is taken: the file is not part of the
+        store until a run stages it; a file no run takes is the caller's to remove."""
+        _check_table_name(name)
+        if not isinstance(df, pd.DataFrame):
+            raise TypeError(f"table {name!r}: expected a pandas DataFrame, got {type(df).__name__}")
+        folder = Path(folder).resolve()
+        root = self.path.resolve()
+        if root not in folder.parents:
+            raise ValueError(f"prepared tables of the store {root} must be written inside it, not in {folder}")
+        df = self._checked(name, df)
+        path = folder / f"{name}-{secrets.token_hex(4)}.parquet"
+        _write_parquet(df, path, self.row_group_size, self.categories_as_text)
+        return PreparedTable(name, path, root, int(len(df)), tuple(str(c) for c in df.columns))
 
     def _clear_leftovers(self) -> list[str]:
         """Remove staging, ledger temp file and orphan run folders (caller holds the lock)."""

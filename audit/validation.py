@@ -97,7 +97,9 @@ def case_key(study: pd.Series, case: pd.Series, series: pd.Series) -> pd.Series:
     sizes = [max(len(u), 1) for u in labels]
     if sizes[0] * sizes[1] * sizes[2] < 2**62:
         combined = (codes[0] * sizes[1] + codes[1]) * sizes[2] + codes[2]
-        uniq, inverse = np.unique(combined, return_inverse=True)
+        # (a hash table of the distinct ids, not a sort of every row: the order of ``uniq`` does not matter)
+        inverse, uniq = pd.factorize(combined)
+        del combined
         triples = zip(uniq // (sizes[1] * sizes[2]), (uniq // sizes[2]) % sizes[1], uniq % sizes[2])
     else:  # pragma: no cover - more than 2**62 id combinations
         uniq, inverse = np.unique(np.column_stack(codes), axis=0, return_inverse=True)
@@ -573,7 +575,12 @@ def _categories(values: pd.Series) -> pd.Series:
     """A text column as a categorical with sorted categories (as the observations schema makes it)."""
     if isinstance(values.dtype, pd.CategoricalDtype):
         return values
-    return values.astype(object).astype(pd.CategoricalDtype())
+    # The codes from a sorted factorization of the cells as they are: ``astype(CategoricalDtype())``
+    # would first copy the whole column into one Arrow text array (a few hundred MB for millions
+    # of rows) to find the categories. The categories are built from the distinct values only.
+    codes, distinct = pd.factorize(values.to_numpy(dtype=object), sort=True, use_na_sentinel=True)
+    dtype = pd.CategoricalDtype(pd.Index(distinct))
+    return pd.Series(pd.Categorical.from_codes(codes, dtype=dtype), index=values.index, name=values.name)
 
 
 def _accepted_cases(accepted: pd.DataFrame, adj_counts: pd.Series) -> pd.DataFrame:

@@ -19,7 +19,7 @@ import hashlib
 import os
 import sys
 from collections.abc import Callable, Iterator, Sequence
-from contextlib import contextmanager, nullcontext
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -122,11 +122,15 @@ def diagnose_batch(observations: Any, alpha: float, batch_number: int, spill_to:
 
 @task(name="summarize", **_common)
 def summarize(review: ReviewInput, plan: rerun.ReusePlan, results: list[dict[str, Any]],
-              alpha: float, with_summary: bool = True) -> dict[str, Any]:
+              alpha: float, with_summary: bool = True, store: str | None = None,
+              stage_to: str | None = None) -> dict[str, Any]:
     """Every table of the run, with the review summary when audit.summary exists.
 
-    ``results`` is emptied once its tables are assembled (their memory is not held twice)."""
-    tables = rerun.assemble_tables(review, plan, results)
+    ``results`` is emptied once its tables are assembled (their memory is not held twice). With
+    ``store`` and ``stage_to``, the tables the summary does not read are validated and written
+    there as soon as they are joined (``rerun.table_stager``)."""
+    stage = None if store is None else rerun.table_stager(rerun.open_store(store), stage_to)
+    tables = rerun.assemble_tables(review, plan, results, stage)
     results.clear()
     if with_summary:
         tables.update(rerun.summary_tables(tables, alpha, review.prepared.cases))
@@ -220,10 +224,11 @@ def _audit_files(files: list[Path], path_problems: list[FileProblem], store: str
     if len(plan.to_compute):
         _workers.start()
     # batch results wait on disk until they are joined (audit.spill); not with Dask, whose
-    # workers may run on other machines
+    # workers may run on other machines. The joined tables the summary does not read wait there
+    # too (validated and written) until the run moves them into the store.
     local = isinstance(_current_task_runner(), ThreadPoolTaskRunner)
-    with (rerun.spill_folder(store) if local else nullcontext(None)) as spill_to:
-        spill = None if spill_to is None else str(spill_to)
+    with rerun.spill_folder(store) as spill_to:
+        spill = str(spill_to) if local else None
         batch_rows = rerun.case_batch_rows(plan.to_compute, batch_size)
         _report_progress("diagnose", 0, len(batch_rows))
         results = []
@@ -239,9 +244,9 @@ def _audit_files(files: list[Path], path_problems: list[FileProblem], store: str
             get_run_logger().warning(_workers.fallback_reason())
         # quote: Prefect does not walk the batch tables (parameter introspection of many frames);
         # the task gets this very list and empties it, so the flow holds no batch tables afterwards
-        tables = summarize(review, plan, quote(results), config.alpha, with_summary)
+        tables = summarize(review, plan, quote(results), config.alpha, with_summary, store, str(spill_to))
         del results
-    summary = write_store(store, review, plan, tables, config, hashes, lock_timeout)
+        summary = write_store(store, review, plan, quote(tables), config, hashes, lock_timeout)
     del tables, review, plan, reads  # the report reads what it needs back from the store
     return report(store, summary) if with_report else summary
 

@@ -290,10 +290,10 @@ def test_summarize_task_gets_the_flows_own_batch_results(prefect_harness, tmp_pa
             collected.append(item)
             yield item
 
-    def assemble_spy(review, plan, batch_results):
+    def assemble_spy(review, plan, batch_results, stage=None):
         given.append(batch_results)
         given.append(list(batch_results))
-        return real_assemble(review, plan, batch_results)
+        return real_assemble(review, plan, batch_results, stage)
 
     monkeypatch.setattr(rerun, "bounded_results", results_spy)
     monkeypatch.setattr(rerun, "assemble_tables", assemble_spy)

@@ -133,3 +133,52 @@ def test_spilled_handle_type_is_what_batches_return(review, tmp_path):
     plain = rerun.diagnose_batch(batch, 0.05)
     for name in plain:
         pd.testing.assert_frame_equal(out[name], _as_text(plain[name]), check_exact=True)
+
+
+def test_tables_the_summary_does_not_read_wait_on_disk(review, batch_tables, tmp_path, monkeypatch):
+    """With a stage function, the joined tables the summary does not read are validated and
+    written at once (audit.store.PreparedTable): the summary sees only its inputs as frames, and
+    the stored run equals the run written from frames."""
+    from audit.store import PreparedTable
+
+    config = AuditConfig()
+    store = rerun.open_store(tmp_path / "store")
+    plan = rerun.plan_run(review, None, config)
+    in_memory = rerun.assemble_tables(review, plan, [dict(t) for t in batch_tables])
+    with spill_folder(store.path) as folder:
+        plan = rerun.plan_run(review, None, config)
+        staged = rerun.assemble_tables(review, plan, [dict(t) for t in batch_tables],
+                                       rerun.table_stager(store, folder))
+        assert plan.reused == {}
+        assert list(staged) == list(in_memory)
+        for name, table in staged.items():
+            assert isinstance(table, pd.DataFrame) == (name in rerun.SUMMARY_INPUTS), name
+        assert {"phases", "contrasts"} <= {n for n, t in staged.items() if isinstance(t, PreparedTable)}
+        first = rerun.write_run(store, review, plan, staged, config, {})
+    second = rerun.write_run(store, review, plan, in_memory, config, {})
+    for name in in_memory:
+        pd.testing.assert_frame_equal(store.table(name, run=first.run_id).drop(columns="run"),
+                                      store.table(name, run=second.run_id).drop(columns="run"), check_exact=True)
+
+    # in a whole run, the summary gets frames for its inputs and no others
+    seen: dict[str, type] = {}
+    real = rerun.summary_tables
+
+    def summary_spy(tables, *a, **kw):
+        seen.update({n: type(t) for n, t in tables.items()})
+        return real(tables, *a, **kw)
+
+    monkeypatch.setattr(rerun, "summary_tables", summary_spy)
+    done = rerun.run_audit([FIXTURE / "data"], tmp_path / "whole", with_report=False, workers=1)
+    assert seen["phases"] is PreparedTable and seen["cases"] is pd.DataFrame
+    assert set(done.tables) >= {"observations", "cases", "phases", "contrasts"}
+
+
+def test_reuse_plan_keeps_its_count_once_the_reused_tables_are_joined(review, tmp_path):
+    store_path = tmp_path / "store"
+    rerun.run_audit([FIXTURE / "data"], store_path, with_report=False, workers=1)
+    plan = rerun.plan_run(review, rerun.open_store(store_path), AuditConfig())
+    n = plan.n_reused
+    assert n == review.prepared.cases["case_key"].nunique() and plan.reused
+    tables = rerun.assemble_tables(review, plan, [])
+    assert plan.reused == {} and plan.n_reused == n and len(tables["cases"]) == n

@@ -313,6 +313,42 @@ def test_validator_failure_commits_nothing(tmp_path):
     assert store.table("cases")["value"].dtype == "float64"
 
 
+def test_prepared_table_is_validated_ahead_and_moved_into_the_run(tmp_path):
+    """A table prepared ahead of its run (validated, written to a file inside the store) is moved
+    into the run: it reads back as the same frame written directly would, and its file is gone."""
+    schema = pa.DataFrameSchema({"case": pa.Column(str), "value": pa.Column(float, pa.Check.ge(0))}, coerce=True)
+    store = ResultsStore(tmp_path / "store", validators={"phases": schema.validate}, categories_as_text=True)
+    ahead = store.path / ".batches" / "run-1"
+    ahead.mkdir(parents=True)
+    frame = pd.DataFrame({"case": pd.Categorical(["a", "b", "a"]), "value": [1, 2, 3]})  # coerced to float
+    prepared = store.prepare_table("phases", frame, ahead)
+    assert prepared.path.exists() and prepared.n_rows == 3 and prepared.columns == ("case", "value")
+    with pytest.raises(pa.errors.SchemaError):  # validated when prepared, before any run
+        store.prepare_table("phases", frame.assign(value=[1, -2, 3]), ahead)
+    with pytest.raises(ValueError, match="inside it"):
+        store.prepare_table("phases", frame, tmp_path)
+    with store.begin_run(lock_timeout=5) as run:
+        run.write_table("cases", cases_frame("one"))
+        with pytest.raises(ValueError, match="prepared table is 'phases'"):
+            run.write_table("contrasts", prepared)
+        run.write_table("phases", prepared)
+        run_id = run.commit({})
+    assert not prepared.path.exists()
+    direct = ResultsStore(tmp_path / "direct", validators={"phases": schema.validate}, categories_as_text=True)
+    write_run(direct, {"phases": frame})
+    pd.testing.assert_frame_equal(store.table("phases", run=run_id).drop(columns="run"),
+                                  direct.table("phases").drop(columns="run"))
+    assert store.table("phases")["value"].dtype == "float64"
+
+    other = ResultsStore(tmp_path / "other")
+    (other.path / "x").mkdir()
+    foreign = other.prepare_table("phases", frame, other.path / "x")
+    with store.begin_run(lock_timeout=5) as run:
+        with pytest.raises(ValueError, match="prepared for the store"):
+            run.write_table("phases", foreign)
+    assert foreign.path.exists()  # not taken
+
+
 # --------------------------------------------------------------------------- lock
 
 
