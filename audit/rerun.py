@@ -151,7 +151,8 @@ class ReusePlan:
     code_version: str
     hashes: pd.Series  # case_key -> case_hash, every accepted case
     to_compute: pd.DataFrame  # observations of the cases to diagnose
-    reused: dict[str, pd.DataFrame] = field(default_factory=dict)  # table -> rows copied
+    # table -> rows copied: ``cases`` as a frame, the other tables as ReusedRows (read when joined)
+    reused: dict[str, Any] = field(default_factory=dict)
     source_run: str | None = None
     # cases copied (``reused`` is emptied as its tables are joined: ``assemble_tables``)
     n_reused: int = field(init=False)
@@ -369,13 +370,31 @@ def _diagnostic_tables(store: ResultsStore) -> list[str]:
     return [t for t in tables if t not in INPUT_TABLES and not t.startswith("summary")]
 
 
+@dataclass(frozen=True, eq=False)
+class ReusedRows:
+    """The rows of one table of the latest run that belong to reused cases, read when called
+    (None when there are none): a large table is read only when it is joined."""
+
+    store: ResultsStore
+    table: str
+    hashes: np.ndarray
+
+    def __call__(self) -> pd.DataFrame | None:
+        try:
+            rows = self.store.reusable(self.table, self.hashes)
+        except KeyError:  # that table of the latest run carries no case_hash
+            return None
+        return rows.reset_index(drop=True) if len(rows) else None
+
+
 def split_for_reuse(
     observations: pd.DataFrame, hashes: pd.Series, store: ResultsStore | None
 ) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
     """Observations of the cases to diagnose, and the rows reused from the latest run, per table.
 
     A case is reused when its hash is in the latest run's ``cases`` table; its rows of every
-    other diagnostics table of that run come along (matched by ``case_hash``).
+    other diagnostics table of that run come along (matched by ``case_hash``). Those other
+    tables are given as :class:`ReusedRows`, read when called.
     """
     if store is None or hashes.empty:
         return observations, {}
@@ -390,17 +409,11 @@ def split_for_reuse(
         return observations, {}
     found = set(previous[HASH_KEY])
     reuse_keys = set(hashes.index[hashes.isin(found)])
-    reused = {"cases": previous}
+    reused: dict[str, Any] = {"cases": previous}
     wanted = hashes[hashes.index.isin(reuse_keys)].to_numpy()
     for table in tables:
-        if table == "cases":
-            continue
-        try:
-            rows = store.reusable(table, wanted)
-        except KeyError:
-            continue
-        if len(rows):
-            reused[table] = rows.reset_index(drop=True)
+        if table != "cases":  # read when the table is joined (``assemble_tables``), not all at once here
+            reused[table] = ReusedRows(store, table, wanted)
     to_compute = observations.loc[~observations["case_key"].isin(reuse_keys)].reset_index(drop=True)
     return to_compute, reused
 
@@ -613,6 +626,7 @@ def assemble_tables(review: ReviewInput, plan: ReusePlan,
         "adjustments": prep.adjustments.reset_index(drop=True),
     }
     for name in names:
+        in_batches = any(name in r for r in batch_results)
         computed = _concat([r[name] for r in batch_results if name in r])
         # columns that were categoricals before their batch was spilled (audit.spill) become
         # categoricals again (one code per row instead of one string)
@@ -630,6 +644,10 @@ def assemble_tables(review: ReviewInput, plan: ReusePlan,
                     computed = computed.merge(prep.cases[["case_key", *extra]], on="case_key", how="left")
             computed[HASH_KEY] = computed["case_key"].map(plan.hashes).astype(object)
         reused = plan.reused.pop(name, None)
+        if isinstance(reused, ReusedRows):
+            reused = reused()
+            if reused is None and not in_batches:  # that table has no rows of the reused cases
+                continue
         frames = [f for f in (reused, computed) if f is not None]
         del reused, computed
         table = _ordered(_concat(frames), order)

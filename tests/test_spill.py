@@ -179,6 +179,12 @@ def test_reuse_plan_keeps_its_count_once_the_reused_tables_are_joined(review, tm
     rerun.run_audit([FIXTURE / "data"], store_path, with_report=False, workers=1)
     plan = rerun.plan_run(review, rerun.open_store(store_path), AuditConfig())
     n = plan.n_reused
-    assert n == review.prepared.cases["case_key"].nunique() and plan.reused
+    assert n == review.prepared.cases["case_key"].nunique()
+    # the other tables are read when they are joined, not when the plan is made
+    assert isinstance(plan.reused["cases"], pd.DataFrame)
+    assert {name: type(t) for name, t in plan.reused.items() if name != "cases"} == {
+        "phases": rerun.ReusedRows, "contrasts": rerun.ReusedRows}
+    phases = plan.reused["phases"]()
+    assert len(phases) and set(phases["case_hash"]) == set(plan.reused["cases"]["case_hash"])
     tables = rerun.assemble_tables(review, plan, [])
     assert plan.reused == {} and plan.n_reused == n and len(tables["cases"]) == n
