@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import csv
 import re
+from array import array
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -247,7 +248,7 @@ def _read_text(path: Path) -> tuple[list[tuple[str, pd.DataFrame]], dict[str, st
     columns: list[list[str]] = []
     caches: list[dict[str, str] | None] = []
     extra: list[str] = []
-    line_numbers: list[int] = []
+    line_numbers = array("q")  # (not a list of int objects, which would stay until the file is read)
     try:
         for row in reader:
             if not any(cell.strip() for cell in row):
@@ -276,7 +277,7 @@ def _read_text(path: Path) -> tuple[list[tuple[str, pd.DataFrame]], dict[str, st
     data_columns = {name: np.array(values, dtype=object) for name, values in zip(names, columns)}
     del columns
     frame = pd.DataFrame(data_columns, dtype=object, index=pd.RangeIndex(len(line_numbers)))
-    frame["__source_row"] = np.asarray(line_numbers, dtype=np.int64)
+    frame["__source_row"] = np.frombuffer(line_numbers, dtype=np.int64).copy()
     frame["__extra_fields"] = pd.Series(extra, dtype=object)
     details = {"encoding": encoding, "delimiter": delimiter}
     return [("", frame)], details
