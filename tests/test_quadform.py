@@ -40,6 +40,20 @@ def test_kronrod_rule_is_exact_for_polynomials():
             assert abs(Q.GAUSS7_WEIGHTS_ON_KRONROD_NODES @ x**deg - exact) < 1e-14
 
 
+def test_kronrod21_rule_of_the_integral_is_exact_for_polynomials():
+    # source: Gauss-Kronrod theory (Kronrod 1965; QUADPACK qk21): the 21-point rule is exact
+    # to degree 31 and its embedded 10-point Gauss rule to degree 19 (and not to degree 20).
+    x = Q._K21_NODES
+    gauss = Q._K21_WEIGHTS - Q._K21_DIFF_WEIGHTS
+    assert x.size == 21 and np.all(np.diff(x) > 0) and np.count_nonzero(gauss) == 10
+    for deg in range(32):
+        exact = 2.0 / (deg + 1) if deg % 2 == 0 else 0.0
+        assert abs(Q._K21_WEIGHTS @ x**deg - exact) < 1e-14
+        if deg <= 19:
+            assert abs(gauss @ x**deg - exact) < 1e-14
+    assert abs(gauss @ x**20 - 2.0 / 21) > 1e-8
+
+
 def test_one_signed_zero_and_nonfinite_rows_are_exact():
     rows = np.array([
         [1.0, 2.0, 0.0],     # all >= 0: Q > 0 a.s.
