@@ -661,7 +661,7 @@ def assemble_tables(review: ReviewInput, plan: ReusePlan,
 def table_stager(store: ResultsStore, folder: str | Path | None) -> Callable[[str, pd.DataFrame], Any] | None:
     """``stage`` for :func:`assemble_tables`: each table validated and written to ``folder``
     (inside the store, e.g. the run's :func:`spill_folder`) by ``store.prepare_table``, for
-    ``write_run`` to move into the run. None without a folder."""
+    ``write_run`` to link into the run. None without a folder."""
     if folder is None:
         return None
     return lambda name, frame: store.prepare_table(name, frame, folder)
@@ -821,7 +821,7 @@ def _run_with_pool(pool: DiagnosePool, files, path_problems, store_path, config:
     if len(plan.to_compute) and diagnose is None:
         pool.start()  # after intake, whose peak they would add to; they start while batches are cut
     # batch results wait on disk until they are joined; the joined tables the summary does not
-    # read wait there too, validated and written, until the run moves them into the store
+    # read wait there too, validated and written, until the run links them into the store
     with spill_folder(store.path) as spill_to:
         tables = _diagnose_and_assemble(pool, review, plan, config, progress, batch_size, diagnose, spill_to,
                                         table_stager(store, spill_to))

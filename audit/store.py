@@ -12,7 +12,7 @@ Commit protocol (one writer at a time, under ``.lock``):
 
 1. every table is written to ``.staging/<run_id>/<table>/part-0.parquet`` and fsynced (a table
    prepared beforehand with :meth:`ResultsStore.prepare_table`, validated and written to a
-   file of its own, is moved there instead);
+   file of its own, is linked there instead);
 2. each staged table folder is renamed to ``<table>/run=<run_id>`` (``os.replace``, same filesystem);
 3. the run's row is appended to the ledger: ``runs.parquet.tmp`` is written, fsynced and renamed
    over ``runs.parquet``. This rename is the commit point;
@@ -322,7 +322,7 @@ def _write_parquet(df: pd.DataFrame, path: Path, row_group_size: int, categories
 @dataclass(frozen=True)
 class PreparedTable:
     """A table validated and written ahead of its run (:meth:`ResultsStore.prepare_table`): the
-    run moves the file in instead of holding the frame until it commits."""
+    run links the file in instead of holding the frame until it commits."""
 
     name: str
     path: Path
@@ -391,7 +391,8 @@ class Run:
         The index is kept as columns unless it is a plain unnamed RangeIndex. A column named
         ``run`` is refused (it is the partition column). If the validator raises, the run is
         marked failed and can no longer be committed. A :class:`PreparedTable` of this store
-        (validated and written by :meth:`ResultsStore.prepare_table`) is moved into the run.
+        (validated and written by :meth:`ResultsStore.prepare_table`) is linked into the run (its
+        file stays, for the caller to remove).
         """
         self._require_open()
         _check_table_name(name)
@@ -421,7 +422,15 @@ class Run:
         try:
             folder = self.staging / name
             folder.mkdir(parents=True, exist_ok=False)
-            os.replace(table.path, folder / PART_FILE)  # same store, same filesystem
+            # linked (same store, same filesystem), or copied where links are not supported; the
+            # prepared file stays, so a run that fails can be written again from it
+            try:
+                os.link(table.path, folder / PART_FILE)
+            except OSError:
+                if not table.path.exists():
+                    raise
+                shutil.copyfile(table.path, folder / PART_FILE)
+                _fsync_file(folder / PART_FILE)
             _fsync_dir(folder)
         except BaseException:
             self._state = "failed"
@@ -605,8 +614,8 @@ class ResultsStore:
 
     def prepare_table(self, name: str, df: pd.DataFrame, folder: str | os.PathLike[str]) -> PreparedTable:
         """Validate ``df`` as :meth:`Run.write_table` does and write it to a new file in ``folder``
-        (inside this store: the run moves it in). No lock is taken: the file is not part of the
-        store until a run stages it; a file no run takes is the caller's to remove."""
+        (inside this store: the run links it in). No lock is taken: the file is not part of the
+        store until a run stages it; the file is the caller's to remove (e.g. with its folder)."""
         _check_table_name(name)
         if not isinstance(df, pd.DataFrame):
             raise TypeError(f"table {name!r}: expected a pandas DataFrame, got {type(df).__name__}")

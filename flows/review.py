@@ -225,7 +225,7 @@ def _audit_files(files: list[Path], path_problems: list[FileProblem], store: str
         _workers.start()
     # batch results wait on disk until they are joined (audit.spill); not with Dask, whose
     # workers may run on other machines. The joined tables the summary does not read wait there
-    # too (validated and written) until the run moves them into the store.
+    # too (validated and written) until the run links them into the store.
     local = isinstance(_current_task_runner(), ThreadPoolTaskRunner)
     with rerun.spill_folder(store) as spill_to:
         spill = str(spill_to) if local else None

@@ -333,7 +333,7 @@ def test_prepared_table_is_validated_ahead_and_moved_into_the_run(tmp_path):
             run.write_table("contrasts", prepared)
         run.write_table("phases", prepared)
         run_id = run.commit({})
-    assert not prepared.path.exists()
+    assert prepared.path.exists()  # linked, not moved: the caller removes it
     direct = ResultsStore(tmp_path / "direct", validators={"phases": schema.validate}, categories_as_text=True)
     write_run(direct, {"phases": frame})
     pd.testing.assert_frame_equal(store.table("phases", run=run_id).drop(columns="run"),
@@ -347,6 +347,33 @@ def test_prepared_table_is_validated_ahead_and_moved_into_the_run(tmp_path):
         with pytest.raises(ValueError, match="prepared for the store"):
             run.write_table("phases", foreign)
     assert foreign.path.exists()  # not taken
+
+
+def test_a_run_that_fails_can_be_written_again_from_its_prepared_tables(tmp_path, monkeypatch):
+    """The prepared file stays when a run links it in: after a failed commit (here the ledger
+    cannot be written) the same prepared table is written again by the next run. Where links
+    are not supported, it is copied."""
+    store = ResultsStore(tmp_path / "store")
+    ahead = store.path / ".batches" / "run-1"
+    ahead.mkdir(parents=True)
+    frame = cases_frame("one")
+    prepared = store.prepare_table("phases", frame, ahead)
+
+    def no_ledger(row):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(store, "_append_ledger", no_ledger)
+    with pytest.raises(OSError):
+        write_run(store, {"phases": prepared})
+    assert store.runs().empty and prepared.path.exists()
+    monkeypatch.undo()
+
+    def no_links(src, dst):
+        raise OSError(1, "Operation not permitted")
+
+    monkeypatch.setattr(os, "link", no_links)
+    write_run(store, {"phases": prepared})
+    pd.testing.assert_frame_equal(store.table("phases").drop(columns="run"), frame)
 
 
 # --------------------------------------------------------------------------- lock
