@@ -389,7 +389,7 @@ class ReusedRows:
 
 def split_for_reuse(
     observations: pd.DataFrame, hashes: pd.Series, store: ResultsStore | None
-) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
+) -> tuple[pd.DataFrame, dict[str, Any]]:
     """Observations of the cases to diagnose, and the rows reused from the latest run, per table.
 
     A case is reused when its hash is in the latest run's ``cases`` table; its rows of every
